@@ -1,0 +1,1 @@
+"""Inverse design of electron-coupled nanophotonic samples: what a designer works with."""
