@@ -67,11 +67,14 @@ def build_parser() -> argparse.ArgumentParser:
                    help="spec key and N values from START to STOP inclusive (1 or 2 of them)")
     p.add_argument("--out", required=True, metavar="DIR")
     p.add_argument("--scheduler", metavar="ADDRESS", help="Dask scheduler (tcp://HOST:PORT)")
-    p.add_argument("--workers", type=int, help="local worker processes (default: cores)")
+    p.add_argument("--workers", type=int, help="local worker processes (default: automatic — "
+                   "this process for quick sweeps, else one per core; 0 = this process)")
 
     p = sub.add_parser("compare", help="rank candidate samples on the same footing")
     p.add_argument("specs", nargs="+")
     p.add_argument("--out", required=True, metavar="DIR")
+    p.add_argument("--scheduler", metavar="ADDRESS", help="Dask scheduler (tcp://HOST:PORT)")
+    p.add_argument("--workers", type=int, help="local worker processes (default: automatic)")
     p.add_argument("--overwrite", action="store_true")
 
     p = sub.add_parser("crosscheck", help="confirm the coupling with the FDTD solver (Meep)")
@@ -96,6 +99,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("demo", help="run the worked grating study end to end (a few minutes)")
     p.add_argument("--out", default="demo-output", metavar="DIR")
+    p.add_argument("--overwrite", action="store_true", help="replace an earlier demo in DIR")
     return parser
 
 

@@ -77,18 +77,150 @@ def run_beam(args) -> int:
     return 0
 
 
-def _not_yet(name: str):
-    def handler(args) -> int:
-        print(f"velomatch {name}: not available in this build yet", file=sys.stderr)
-        return 2
-    return handler
+def _status(message: str) -> None:
+    print(f"  {message}", file=sys.stderr, flush=True)
 
 
-run_evaluate = _not_yet("evaluate")
-run_spectrum = _not_yet("spectrum")
-run_design = _not_yet("design")
-run_sweep = _not_yet("sweep")
-run_compare = _not_yet("compare")
-run_crosscheck = _not_yet("crosscheck")
-run_export = _not_yet("export")
-run_demo = _not_yet("demo")
+def _coupling_text(result: dict) -> str:
+    c = result["coupling"]
+    lines = [f"sample: {result['sample']['family']}  "
+             f"({result['provenance']['solver']}, "
+             + (f"step {result['provenance']['resolution_m'] * 1e9:.3g} nm)"
+                if result["provenance"]["resolution_m"] else "exact)"),
+             f"  laser angle               {result['laser']['angle_deg']:.3f} deg",
+             f"  peak field (incidence)    {result['laser']['peak_field_V_per_m']:.4g} V/m",
+             f"  coupling integral |I|     {math.hypot(*c['integral_V']):.4g} V",
+             f"  |beta_c|                  {c['beta_c']:.4g}",
+             f"  |beta_c| per field        {c['beta_c_per_field_m_per_V']:.4g} m/V"]
+    if c["gradient_V_per_m"] is not None:
+        lines.append(f"  gradient G                {c['gradient_V_per_m']:.4g} V/m "
+                     f"(over {c['gradient_length_m'] * 1e6:.4g} um)")
+        lines.append(f"  structure factor G/E0     {c['structure_factor']:.4g}")
+    if c["max_field_in_material_V_per_m"] is not None:
+        lines.append(f"  max field in material     {c['max_field_in_material_V_per_m']:.4g} V/m")
+    if c["damage_factor"] is not None:
+        lines.append(f"  damage factor G/E_max     {c['damage_factor']:.4g}")
+    err = c["relative_error_estimate"]
+    lines.append("  relative error estimate   " + ("n/a" if err is None else f"{err:.2%}"))
+    return "\n".join(lines)
+
+
+def run_evaluate(args) -> int:
+    from designer.evaluate import evaluate, evaluation_json
+    from designer.spec import load_spec
+
+    spec = load_spec(args.spec)
+    if not args.json:
+        print(f"evaluating {args.spec}", file=sys.stderr)
+    ev = evaluate(spec, progress=None if args.json else _status)
+    result = evaluation_json(ev)
+    if args.out:
+        vio.write_json(args.out, result)
+    if args.plot:
+        from designer.plots import evaluation_figure
+
+        vio.save_figure(evaluation_figure(ev), args.plot)
+    if args.report:
+        from designer.report import evaluation_report
+
+        vio.write_atomic(args.report, evaluation_report(ev, result))
+    _emit(args, result, _coupling_text(result))
+    return 0
+
+
+def spectrum_of(ev) -> dict:
+    """PINEM spectrum of an evaluation: spot and pulse averaged, ZLP-broadened."""
+    import numpy as np
+
+    from designer import spectrum
+    from solvers.coupling import beta_from_integral
+
+    spec = ev.spec
+    e0 = ev.peak_field_V_per_m
+    coupling = abs(complex(beta_from_integral(ev.run.integral_V * e0, ev.omega)))
+    samples, weights = np.array([coupling]), None
+    spot = spec.path.electron_spot_m
+    if spot and ev.run.map_x_m is not None:
+        x = ev.run.map_x_m
+        period = ev.run.layout.grid.size_x
+        betas = np.abs(np.asarray(beta_from_integral(ev.run.map_integral_V * e0, ev.omega)))
+        shifts = period * np.arange(-20, 21)
+        d = x[:, None] + shifts[None, :] - ev.run.layout.path.x_m
+        weights = np.exp(-4 * np.log(2) * d**2 / spot**2).sum(axis=1)
+        samples = betas
+    tau_l, tau_e = spec.laser.duration_s, spec.spectrum.electron_pulse_s
+    if tau_l is None or tau_e is None:
+        tau_l = tau_e = None
+    lines = spectrum.averaged_line_spectrum(samples, ev.omega, spot_weights=weights,
+                                            tau_laser=tau_l, tau_electron=tau_e,
+                                            delay=spec.spectrum.delay_s)
+    energy, density = spectrum.broadened_spectrum(lines, spec.spectrum.zlp_fwhm_eV)
+    return {"beta_c_peak": coupling, "photon_energy_eV": spectrum.photon_energy_eV(ev.omega),
+            "orders": lines.orders, "line_energy_eV": lines.energy_eV,
+            "line_probability": lines.probability, "energy_eV": energy,
+            "density_per_eV": density, "zlp_fwhm_eV": spec.spectrum.zlp_fwhm_eV,
+            "averaged_over": {"electron_spot_fwhm_m": spot if weights is not None else None,
+                              "laser_duration_s": tau_l, "electron_pulse_s": tau_e,
+                              "delay_s": spec.spectrum.delay_s if tau_l else None},
+            "_lines": lines}
+
+
+def run_spectrum(args) -> int:
+    from designer import spectrum
+    from designer.evaluate import evaluate
+    from designer.spec import load_spec
+
+    spec = load_spec(args.spec)
+    ev = evaluate(spec, refine=False, progress=None if args.json else _status)
+    result = spectrum_of(ev)
+    lines = result.pop("_lines")
+    if args.plot:
+        spectrum.plot_spectrum(args.plot, result["energy_eV"], result["density_per_eV"], lines,
+                               title=f"PINEM spectrum, |beta_c| = {result['beta_c_peak']:.3g}")
+    result["provenance"] = provenance(spec.sha256, solver=ev.solver,
+                                      resolution_m=ev.run.resolution_m)
+    strongest = sorted(zip(lines.orders, lines.probability), key=lambda t: -t[1])[:5]
+    text = [f"PINEM spectrum: |beta_c| = {result['beta_c_peak']:.4g}, "
+            f"photon energy {result['photon_energy_eV']:.4g} eV, "
+            f"zero-loss width {spec.spectrum.zlp_fwhm_eV:g} eV",
+            "  strongest lines: " + ", ".join(f"l={int(o)}: {p:.3g}" for o, p in strongest)]
+    _emit(args, result, "\n".join(text))
+    return 0
+
+
+
+
+def run_export(args) -> int:
+    from designer.export import export_command
+
+    return export_command(args)
+
+
+def run_crosscheck(args) -> int:
+    from designer.crosscheck import crosscheck_command
+
+    return crosscheck_command(args)
+
+
+def run_design(args) -> int:
+    from designer.design import design_command
+
+    return design_command(args)
+
+
+def run_sweep(args) -> int:
+    from designer.sweep import sweep_command
+
+    return sweep_command(args)
+
+
+def run_compare(args) -> int:
+    from designer.compare import compare_command
+
+    return compare_command(args)
+
+
+def run_demo(args) -> int:
+    from designer.demo import demo_command
+
+    return demo_command(args)

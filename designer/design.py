@@ -1,0 +1,934 @@
+"""``velomatch design``: optimize a spec's sample, with checkpoints, resume and reports.
+
+The ``[optimize]`` table of the spec::
+
+    [optimize]
+    objective = "coupling"        # | "structure_factor" | "damage_factor"
+    variables = { thickness_nm = [40.0, 150.0] }   # or a list of names: family bounds
+    iterations = 100              # budget per start
+    starts = 1                    # 1 = the spec's design; more: seeded random starts
+    seed = 0
+    method = "adam"               # | "lbfgs"
+    learning_rate = 0.05          # Adam step in unit-box variables
+    tolerance = 1e-6              # relative loss change (for `patience` iterations)
+    constraints = "penalty"       # | "augmented_lagrangian"
+    max_field_V_per_m = 2e9       # optional cap on |E| in material at the spec's field
+    checkpoint_every = 5
+    refine_factor = 2.0           # the final re-evaluation uses step h / refine_factor
+    robust = { voltage_kV = [95, 105], wavelength_nm = [790, 810], angle_deg = 1.0,
+               etch_nm = 10, points = 3, aggregate = "worst", combine = "each" }
+    # free-form density (needs [sample.freeform]): add "density" to the variables
+    projection_beta = [1.0, 64.0]  # projection sharpness: start, largest
+    projection_beta_every = 10     # iterations between doublings of beta
+    threshold_spread = 0.25        # robust thresholds 0.5 +/- this (eroded/dilated)
+
+Free-form density (``variables`` includes ``"density"``, alone or with continuous
+parameters): the raw density ``rho`` of the region cells (one value per FDFD cell,
+bounds [0, 1] kept by the projected-gradient clip) goes through the cone filter, the
+threshold projection with continuation ``beta(n) = min(beta0 2^(n // every), beta_max)``
+and, when ``[fabrication]`` sets ``min_feature_nm`` / ``min_gap_nm``, the robust
+eroded/nominal/dilated triple whose worst case is the objective (designer.freeform;
+B. Bourdin, IJNME 50, 2143, 2001; F. Wang, B. S. Lazarov & O. Sigmund, Struct.
+Multidisc. Optim. 43, 767, 2011).  The filter radius is
+``freeform.filter_radius_for_length(max(min_feature, min_gap), threshold_spread)``.
+The result is the *final* iterate binarized (nominal design at beta = inf); its figures
+are what the run reports, ``design.toml`` stores it as ``density.npy`` beside it, and
+freeform.pattern_rule_check measures its smallest solid and void features
+(``comparison.json`` -> ``freeform``).  The loss-change stop rule is off for density
+runs (the continuation changes the loss on purpose): they run their iteration budget.
+
+Outputs in the folder ``--out DIR`` (never reused unless ``--overwrite`` or
+``--resume``): ``design.toml`` (the optimized design, a complete spec),
+``evaluation.json`` (``velomatch evaluate design.toml`` reproduces it),
+``refined.json`` (the design at a finer step, with its error estimate),
+``design.png`` (design and fields), ``history.json`` and ``convergence.png``,
+``comparison.json`` / ``comparison.txt`` (start vs optimized) and
+``checkpoint.json`` (written every ``checkpoint_every`` iterations; ``--resume``
+continues from it, bit-exactly).
+"""
+
+from __future__ import annotations
+
+import copy
+import dataclasses
+import json
+import math
+import sys
+import time
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+
+from designer import io as vio
+from designer import objectives as obj
+from designer import optimize as opt
+from designer.errors import SpecError, UsageError
+from designer.families import get_family
+from designer.spec import Spec, dump_spec, load_spec
+from designer.tables import TableReader
+
+CHECKPOINT = "checkpoint.json"
+FEASIBILITY_TOL = 1e-3   # g <= this counts as meeting a constraint (normalized g)
+
+
+# ---------------------------------------------------------------------------------
+# configuration
+# ---------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class DesignConfig:
+    """The validated ``[optimize]`` table (spec units for bounds)."""
+
+    objective: str
+    keys: tuple[str, ...]
+    bounds: dict
+    iterations: int = 50
+    starts: int = 1
+    seed: int = 0
+    method: str = "adam"
+    learning_rate: float = 0.05
+    tolerance: float = 1e-6
+    gradient_tolerance: float = 1e-8
+    patience: int = 3
+    constraints: str = "penalty"
+    penalty_weight: float = 100.0
+    al_mu: float = 10.0
+    al_every: int = 5
+    max_field_V_per_m: float | None = None
+    checkpoint_every: int = 5
+    refine_factor: float = 2.0
+    robust: dict = field(default_factory=dict)
+    aggregate: str = "worst"
+    density: bool = False            # the free-form region's density is a variable
+    projection: dict = field(default_factory=dict)   # beta0, beta_max, every, delta_eta
+
+    def identity(self) -> dict:
+        """What must match for a resume (everything but the iteration budget)."""
+        d = asdict(self)
+        d.pop("iterations")
+        d["keys"] = list(self.keys)
+        d["bounds"] = {k: list(v) for k, v in self.bounds.items()}
+        return d
+
+
+def _pair(reader: TableReader, key: str, value, *, positive: bool = False) -> tuple[float, float]:
+    if (not isinstance(value, (list, tuple)) or len(value) != 2
+            or any(isinstance(v, bool) or not isinstance(v, (int, float)) for v in value)):
+        raise SpecError(reader.source, reader.key(key), "must be a pair [lower, upper] of "
+                        "numbers", value)
+    lo, hi = float(value[0]), float(value[1])
+    if not (math.isfinite(lo) and math.isfinite(hi)) or not lo < hi:
+        raise SpecError(reader.source, reader.key(key), "needs lower < upper", value)
+    if positive and lo <= 0:
+        raise SpecError(reader.source, reader.key(key), "values must be > 0", value)
+    return lo, hi
+
+
+def parse_optimize(spec: Spec, iterations: int | None = None) -> DesignConfig:
+    """Validate the spec's ``[optimize]`` table; SpecError names file, key and value."""
+    from designer.fabrication import FabricationConflict, bounds_from_rules
+
+    if not spec.optimize:
+        raise SpecError(spec.source, "optimize", "velomatch design needs an [optimize] table "
+                        "(at least: variables = [...])")
+    r = TableReader(spec.optimize, "optimize", spec.source)
+    family = get_family(spec.family)
+    known = family.variables(spec.sample)
+    known_text = ", ".join(sorted(known)) or "none"
+    objective = r.string("objective", "coupling", choices=obj.OBJECTIVES)
+    raw_vars = r.raw("variables")
+    if isinstance(raw_vars, list):
+        if not raw_vars or not all(isinstance(k, str) for k in raw_vars):
+            raise r.error("variables", "must be a non-empty list of names or a table "
+                          "{name = [lower, upper]}", raw_vars)
+        wanted = {k: None for k in raw_vars}
+    elif isinstance(raw_vars, dict) and raw_vars:
+        wanted = dict(raw_vars)
+    else:
+        raise r.error("variables", "must be a non-empty list of names or a table "
+                      "{name = [lower, upper]}", raw_vars)
+    density = "density" in wanted
+    if density:
+        value = wanted.pop("density")
+        if value not in (None, True, [0, 1], [0.0, 1.0]):
+            raise SpecError(spec.source, "optimize.variables.density", "the density's "
+                            "bounds are [0, 1]; write \"density\" in the list (or "
+                            "density = [0.0, 1.0])", value)
+        if getattr(spec.sample, "freeform", None) is None:
+            raise SpecError(spec.source, "optimize.variables.density",
+                            "needs a free-form region: add a [sample.freeform] table",
+                            "density")
+    variables = {}
+    vr = TableReader(wanted, "optimize.variables", spec.source)
+    for key, value in wanted.items():
+        if key not in known:
+            raise SpecError(spec.source, f"optimize.variables.{key}",
+                            f"not a continuous parameter of the {spec.family} family "
+                            f"(its variables: {known_text})", value)
+        start, f_lo, f_hi = known[key]
+        if value is None:
+            lo, hi = f_lo, f_hi
+        else:
+            lo, hi = _pair(vr, key, value)
+            slack = 1e-9 * max(1.0, abs(f_lo), abs(f_hi))
+            if lo < f_lo - slack or hi > f_hi + slack:
+                raise SpecError(spec.source, f"optimize.variables.{key}",
+                                f"outside the family's physical bounds [{f_lo:g}, {f_hi:g}]",
+                                value)
+        variables[key] = (start, lo, hi)
+    try:
+        bounds = bounds_from_rules(spec.fabrication, variables)
+    except FabricationConflict as exc:
+        raise SpecError(spec.source, "optimize.variables", str(exc), raw_vars) from None
+    for key, (lo, hi) in bounds.items():
+        if not hi - lo > 1e-12 * max(1.0, abs(lo)):
+            raise SpecError(spec.source, f"optimize.variables.{key}",
+                            f"the fabrication rules fix this variable at {lo:g}; remove it "
+                            "from the variables", wanted[key])
+    cfg = dict(
+        iterations=r.number("iterations", 50, integer=True, minimum=1),
+        starts=r.number("starts", 1, integer=True, minimum=1),
+        seed=r.number("seed", 0, integer=True, minimum=0),
+        method=r.string("method", "adam", choices=opt.METHODS),
+        learning_rate=r.number("learning_rate", 0.05, minimum=0.0, exclusive_minimum=True),
+        tolerance=r.number("tolerance", 1e-6, minimum=0.0),
+        gradient_tolerance=r.number("gradient_tolerance", 1e-8, minimum=0.0),
+        patience=r.number("patience", 3, integer=True, minimum=1),
+        constraints=r.string("constraints", "penalty", choices=opt.CONSTRAINT_METHODS),
+        penalty_weight=r.number("penalty_weight", 100.0, minimum=0.0, exclusive_minimum=True),
+        al_mu=r.number("al_mu", 10.0, minimum=0.0, exclusive_minimum=True),
+        al_every=r.number("al_every", 5, integer=True, minimum=1),
+        max_field_V_per_m=r.number("max_field_V_per_m", None, minimum=0.0,
+                                   exclusive_minimum=True),
+        checkpoint_every=r.number("checkpoint_every", 5, integer=True, minimum=1),
+        refine_factor=r.number("refine_factor", 2.0, minimum=1.0, exclusive_minimum=True),
+    )
+    robust, aggregate = _parse_robust(r.subtable("robust"), spec)
+    projection = _parse_projection(r, density)
+    r.finish()
+    if iterations is not None:
+        if iterations < 1:
+            raise UsageError(f"--iterations = {iterations!r}: must be >= 1")
+        cfg["iterations"] = int(iterations)
+    return DesignConfig(objective=objective, keys=tuple(variables), bounds=bounds,
+                        robust=robust, aggregate=aggregate, density=density,
+                        projection=projection, **cfg)
+
+
+def _parse_projection(r: TableReader, density: bool) -> dict:
+    keys = ("projection_beta", "projection_beta_every", "threshold_spread")
+    if not density:
+        for key in keys:
+            if r.has(key):
+                raise r.error(key, "only for a free-form density (add \"density\" to the "
+                              "variables)", r.raw(key))
+        return {}
+    beta0, beta_max = _pair(r, "projection_beta", r.raw("projection_beta", [1.0, 64.0]),
+                            positive=True) if r.has("projection_beta") else (1.0, 64.0)
+    every = r.number("projection_beta_every", 10, integer=True, minimum=1)
+    spread = r.number("threshold_spread", 0.25, minimum=0.0, maximum=0.5,
+                      exclusive_minimum=True, exclusive_maximum=True)
+    return {"beta0": beta0, "beta_max": beta_max, "every": every, "factor": 2.0,
+            "delta_eta": spread}
+
+
+def _parse_robust(r: TableReader, spec: Spec) -> tuple[dict, str]:
+    out = {}
+    if r.has("voltage_kV"):
+        out["voltage_kV"] = _pair(r, "voltage_kV", r.raw("voltage_kV"), positive=True)
+    if r.has("wavelength_nm"):
+        out["wavelength_nm"] = _pair(r, "wavelength_nm", r.raw("wavelength_nm"), positive=True)
+    angle = r.number("angle_deg", None, minimum=0.0, exclusive_minimum=True, maximum=30.0)
+    if angle is not None:
+        out["angle_deg"] = angle
+    etch = r.number("etch_nm", None, minimum=0.0, exclusive_minimum=True)
+    if etch is not None:
+        if not obj.has_lateral_edges(spec):
+            raise r.error("etch_nm", "an over/under-etch tolerance needs lateral edges (a "
+                          "grating or a membrane with slits)", etch)
+        out["etch_nm"] = etch
+    points = r.number("points", 3, integer=True, minimum=2, maximum=9)
+    aggregate = r.string("aggregate", "worst", choices=obj.AGGREGATES)
+    combine = r.string("combine", "each", choices=("each", "all"))
+    r.finish()
+    if out:
+        out.update(points=points, combine=combine)
+    return out, aggregate
+
+
+# ---------------------------------------------------------------------------------
+# the problem: models, loss, step
+# ---------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class DesignProblem:
+    """Everything a run needs, built once from a spec and its configuration."""
+
+    spec: Spec
+    config: DesignConfig
+    method: str                       # solver: "fdfd" | "layers"
+    resolution_m: float | None
+    models: tuple
+    box: opt.Box
+    x_start: np.ndarray
+    constraint_names: tuple[str, ...]
+    loss: Callable
+    step: Callable
+    evaluate: Callable
+    transform: object
+    scale: float = 1.0               # loss scale: |F| of the start design
+    chain: object = None             # objectives.DensityChain of a free-form density
+    pattern_evaluate: Callable | None = None   # loss of [u_keys, pattern] (no projection)
+    rho_start: np.ndarray | None = None        # the spec's density on the region cells
+
+    @property
+    def n_keys(self) -> int:
+        return len(self.config.keys)
+
+    def x_of(self, u) -> np.ndarray:
+        return np.asarray(opt.from_unit(np.asarray(u, dtype=float), self.box))
+
+    def beta_at(self, iteration: int) -> float:
+        """Projection sharpness of the continuation at ``iteration``."""
+        from designer import freeform as ff
+
+        pr = self.config.projection
+        return float(ff.beta_schedule(pr["beta0"], every=pr["every"], factor=pr["factor"],
+                                      beta_max=pr["beta_max"])(iteration))
+
+    def aux(self, u, multipliers, iteration: int = 0) -> tuple:
+        """The loss's data at ``u``: masks, multipliers, scale (and beta for a density)."""
+        base = (self.masks(u), np.asarray(multipliers, dtype=float), self.scale)
+        return base + ((self.beta_at(iteration),) if self.chain is not None else ())
+
+    def binarized(self, u) -> np.ndarray:
+        """The fabricated free-form pattern of ``u`` (nominal design, beta = inf)."""
+        return self.chain.binarized(self.x_of(u)[self.n_keys:].reshape(self.chain.shape))
+
+    def pattern_u(self, u, pattern) -> np.ndarray:
+        return np.concatenate([np.asarray(u, dtype=float)[:self.n_keys],
+                               np.asarray(pattern, dtype=float).ravel()])
+
+    def start_pattern(self) -> np.ndarray:
+        """What the start spec evaluates to: its density binarized at 0.5, unfiltered."""
+        from designer import freeform as ff
+
+        return np.asarray(ff.project(self.rho_start, math.inf))
+
+    def pattern_masks(self, u, pattern) -> tuple:
+        x = self.x_of(u)[:self.n_keys]
+        return tuple(m.material_mask(x, density=pattern) for m in self.models)
+
+    def values_of(self, u) -> dict:
+        return {k: float(v) for k, v in zip(self.config.keys, self.x_of(u))}
+
+    def masks(self, u) -> tuple:
+        if self.chain is not None:
+            return self.pattern_masks(u, self.binarized(u))
+        x = self.x_of(u)
+        return tuple(m.material_mask(x) for m in self.models)
+
+    def valid(self, u) -> bool:
+        """True when every scenario's geometry at ``u`` is a valid sample."""
+        family = get_family(self.spec.family)
+        values = self.values_of(u)
+        try:
+            q = family.replace(self.spec.sample, values)
+            family.check_path(q, self.spec.context)
+            full = {k: v[0] for k, v in family.variables(q).items()}
+            for m in self.models:
+                if m.scenario.etch_m:
+                    family.replace(self.spec.sample, obj.etch_values(
+                        self.spec.family, q, full, m.scenario.etch_m))
+        except (ValueError, SpecError):
+            return False
+        return True
+
+    def design_params(self, u, density_file: str = "density.npy"):
+        """The family parameters of ``u``; a free-form region holds the binarized
+        pattern (to be saved as ``density_file`` beside the design spec)."""
+        q = get_family(self.spec.family).replace(self.spec.sample, self.values_of(u))
+        if self.chain is not None:
+            from designer.families import region
+
+            q = dataclasses.replace(q, freeform=region.with_pattern(
+                q.freeform, self.binarized(u), self.models[0].layout, density_file))
+        return q
+
+
+_PROBLEMS: dict = {}     # (spec sha256, config identity) -> DesignProblem, last few
+
+
+def cached_problem(spec: Spec, config: DesignConfig) -> DesignProblem:
+    """:func:`build_problem`, reused while spec and settings (bar the iteration budget)
+    are the same, so a resume in the same process does not compile again."""
+    key = (spec.sha256, spec.source, json.dumps(vio.to_jsonable(config.identity()),
+                                                sort_keys=True), _density_digest(spec))
+    problem = _PROBLEMS.get(key)
+    if problem is None:
+        problem = build_problem(spec, config)
+        while len(_PROBLEMS) >= 4:
+            _PROBLEMS.pop(next(iter(_PROBLEMS)))
+        _PROBLEMS[key] = problem
+    return dataclasses.replace(problem, config=config, scale=1.0)
+
+
+def _density_digest(spec: Spec) -> str:
+    # a stored density is a file: the spec's hash does not cover its content
+    fr = getattr(spec.sample, "freeform", None)
+    if fr is None or fr.density is None:
+        return ""
+    import hashlib
+
+    return hashlib.sha256(np.ascontiguousarray(fr.density).tobytes()).hexdigest()
+
+
+def build_problem(spec: Spec, config: DesignConfig) -> DesignProblem:
+    """The models of every scenario and the loss, step and evaluate functions.
+
+    The loss takes ``aux = (masks, multipliers, scale)``: the loss scale is data, so
+    one compilation serves the scale's own evaluation and the whole run."""
+    from designer.evaluate import choose_method, default_resolution
+    from designer.fabrication import constraint_function
+
+    family = get_family(spec.family)
+    method = choose_method(spec)
+    h = None
+    if method == "fdfd":
+        h = spec.solver.resolution_m or default_resolution(spec)
+    keys = config.keys
+    box = opt.make_box(config.bounds, keys)
+    known = family.variables(spec.sample)
+    x_start = np.clip(np.array([known[k][0] for k in keys], dtype=float), box.lower, box.upper)
+    if config.density and method != "fdfd":
+        raise SpecError(spec.source, "solver.method", "a free-form density needs the FDFD "
+                        "solver", spec.solver.method)
+    # a robust density solves three designs per scenario: keep all their factorizations
+    cache = 4 if config.density else 2
+    models = tuple(obj.build_model(sc, spec, keys, x_start, config.bounds, method, h,
+                                   cache_size=cache)
+                   for sc in obj.scenarios(spec, config.robust))
+    objective = obj.objective_function(list(models), config.objective, config.aggregate)
+    chain = pattern_objective = rho_start = None
+    if config.density:
+        chain, rho_start = _density_chain(spec, config, models)
+        pattern_objective = obj.pattern_objective_function(
+            list(models), config.objective, config.aggregate, chain.shape, len(keys))
+        objective = obj.freeform_objective_function(list(models), config.objective,
+                                                    config.aggregate, chain, len(keys))
+        n = rho_start.size
+        box = opt.Box(np.concatenate([box.lower, np.zeros(n)]),
+                      np.concatenate([box.upper, np.ones(n)]))
+        x_start = np.concatenate([x_start, rho_start.ravel()])
+    names, fab_g = constraint_function(spec.fabrication, known)
+    cap = (obj.field_cap_constraint(list(models), config.max_field_V_per_m)
+           if config.max_field_V_per_m else None)
+    constraint_names = tuple(names) + (tuple(f"max_field[{m.scenario.label}]" for m in models)
+                                       if cap else ())
+    constraints = None
+    if constraint_names:
+        import jax.numpy as jnp
+
+        def constraints(x, e_max):
+            parts = []
+            if names:
+                parts.append(fab_g({k: x[i] for i, k in enumerate(keys)}))
+            if cap is not None:
+                parts.append(cap(e_max))
+            return jnp.concatenate(parts)
+
+    penalty = opt.Penalty(config.constraints, config.penalty_weight, config.al_mu)
+    transform = opt.make_transform(config.method, config.learning_rate)
+    problem = DesignProblem(spec, config, method, h, models, box, x_start, constraint_names,
+                            None, None, None, transform, chain=chain, rho_start=rho_start)
+    problem = _finish_problem(problem, objective, constraints, penalty)
+    if pattern_objective is not None:
+        pattern_loss = opt.make_loss(pattern_objective, constraints, problem.box, penalty)
+        problem = dataclasses.replace(problem, pattern_evaluate=opt.make_evaluate(pattern_loss))
+    return problem
+
+
+def _finish_problem(problem: DesignProblem, objective, constraints, penalty) -> DesignProblem:
+    loss = opt.make_loss(objective, constraints, problem.box, penalty)
+    return dataclasses.replace(problem, loss=loss, step=opt.make_step(loss, problem.transform),
+                               evaluate=opt.make_evaluate(loss))
+
+
+def length_rule(spec: Spec) -> float:
+    """The free-form minimum length (m): the larger of min_feature and min_gap (the
+    robust formulation imposes one length on both phases); 0 = no rule."""
+    return max(spec.fabrication.min_feature_m, spec.fabrication.min_gap_m)
+
+
+def _density_chain(spec: Spec, config: DesignConfig, models) -> tuple:
+    from designer import freeform as ff
+    from designer.families import region
+
+    family = get_family(spec.family)
+    fr = spec.sample.freeform
+    layout = models[0].layout
+    try:
+        cells = region.region_cells(fr, layout)
+        for m in models[1:]:
+            if region.region_cells(fr, m.layout).shape != cells.shape:
+                raise ValueError("the robust scenarios put the free-form region on grids "
+                                 "of different sizes; drop the wavelength band")
+    except ValueError as exc:
+        raise SpecError(spec.source, "sample.freeform", str(exc)) from None
+    length = length_rule(spec)
+    radius = delta = None
+    if length > 0:
+        delta = config.projection["delta_eta"]
+        radius = ff.filter_radius_for_length(length, delta)
+    g = layout.grid
+    chain = obj.DensityChain(cells.shape, g.dx, g.dz, cells.periodic_x, radius, delta)
+    return chain, np.asarray(family.freeform_start(spec.sample, layout), dtype=float)
+
+
+# ---------------------------------------------------------------------------------
+# one start
+# ---------------------------------------------------------------------------------
+@dataclass
+class StartState:
+    """Mutable progress of one start (kept in the checkpoint)."""
+
+    index: int
+    u: np.ndarray
+    opt_state: object
+    multipliers: np.ndarray
+    losses: list = field(default_factory=list)
+    history: list = field(default_factory=list)
+    reason: str | None = None
+
+
+def _record(problem: DesignProblem, k: int, u, loss, extras, pg, seconds) -> dict:
+    value, per, g = extras
+    return {"iteration": k, "loss": float(loss), "objective": float(value),
+            "scenarios": [float(v) for v in np.asarray(per)],
+            "constraints": [float(v) for v in np.asarray(g)],
+            "values": problem.values_of(u), "projected_gradient": pg, "seconds": seconds}
+
+
+def run_start(problem: DesignProblem, st: StartState, *, checkpoint: Callable[[], None],
+              bar=None, on_iteration: Callable[[StartState], None] | None = None) -> None:
+    """Iterate one start until its stop rule fires (mutates ``st``)."""
+    cfg = problem.config
+    tolerance = 0.0 if problem.chain is not None else cfg.tolerance
+    rule = opt.StopRule(cfg.iterations, tolerance, cfg.gradient_tolerance, cfg.patience)
+    penalty = opt.Penalty(cfg.constraints, cfg.penalty_weight, cfg.al_mu)
+    st.reason = None
+    while True:
+        pg = None
+        if st.history:
+            pg = st.history[-1]["projected_gradient"]
+        reason = opt.stop_reason(st.losses, np.inf if pg is None else pg, rule)
+        if reason:
+            st.reason = reason
+            return
+        t0 = time.perf_counter()
+        u = np.asarray(st.u)
+        aux = problem.aux(u, st.multipliers, len(st.losses))
+        u_next, state, loss, grad, extras = problem.step(u, st.opt_state, aux)
+        u_next = opt.backtrack_to_valid(u, np.asarray(u_next), problem.valid)
+        pg = opt.projected_gradient_norm(u, grad)
+        k = len(st.losses)
+        st.history.append(_record(problem, k, u, loss, extras, pg, time.perf_counter() - t0))
+        st.losses.append(float(loss))
+        st.u, st.opt_state = u_next, state
+        if (k + 1) % cfg.al_every == 0:
+            st.multipliers = opt.update_multipliers(np.asarray(extras[2]), st.multipliers,
+                                                    penalty)
+        if bar is not None:
+            bar.update(1)
+            bar.set_postfix(objective=f"{float(extras[0]):.4g}")
+        if (k + 1) % cfg.checkpoint_every == 0:
+            checkpoint()
+        if on_iteration is not None:
+            on_iteration(st)
+
+
+def _state_json(st: StartState) -> dict:
+    return {"index": st.index, "u": opt.array_to_json(st.u),
+            "opt_state": opt.state_to_json(st.opt_state),
+            "multipliers": opt.array_to_json(st.multipliers), "losses": st.losses,
+            "history": st.history, "reason": st.reason}
+
+
+def _state_from_json(d: dict, problem: DesignProblem) -> StartState:
+    u = opt.array_from_json(d["u"])
+    template = problem.transform.init(np.asarray(u))
+    return StartState(d["index"], u, opt.state_from_json(d["opt_state"], template),
+                      opt.array_from_json(d["multipliers"]), list(d["losses"]),
+                      list(d["history"]), d["reason"])
+
+
+# ---------------------------------------------------------------------------------
+# the run
+# ---------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class DesignResult:
+    """Per start: the best iterate (u, record) and its design-rule violations."""
+
+    problem: DesignProblem
+    starts: tuple            # StartState, in order
+    best_start: int
+    best_u: np.ndarray
+    best_record: dict
+    start_record: dict
+    per_start_best: tuple    # (u, record, violations) per start
+
+
+def pattern_record(problem: DesignProblem, u, pattern, multipliers=None) -> dict:
+    """Record of the design ``u`` with its free-form region set to ``pattern`` as it is
+    (what evaluate computes for a spec holding that pattern)."""
+    n_con = len(problem.constraint_names)
+    mult = np.zeros(n_con) if multipliers is None else np.asarray(multipliers)
+    up = problem.pattern_u(u, pattern)
+    aux = (problem.pattern_masks(u, pattern), mult, problem.scale)
+    loss, extras = problem.pattern_evaluate(up, aux)
+    return _record(problem, 0, u, loss, extras, None, None)
+
+
+def _best_of(problem: DesignProblem, st: StartState) -> tuple[np.ndarray, dict]:
+    """The best evaluated iterate of a start (the final point evaluated too).
+
+    Free-form density: the final iterate, binarized (earlier iterates are gray designs
+    at a smaller projection sharpness, not comparable)."""
+    u_last = np.asarray(st.u)
+    if problem.chain is not None:
+        rec = pattern_record(problem, u_last, problem.binarized(u_last), st.multipliers)
+        rec["iteration"] = len(st.losses)
+        return u_last, rec
+    aux = (problem.masks(u_last), np.asarray(st.multipliers), problem.scale)
+    loss, extras = problem.evaluate(u_last, aux)
+    last = _record(problem, len(st.losses), u_last, loss, extras, None, None)
+    candidates = [(np.asarray(opt.to_unit(np.array(list(r["values"].values())), problem.box)),
+                   r) for r in st.history] + [(u_last, last)]
+    feasible = [c for c in candidates if max(c[1]["constraints"], default=0.0) <= FEASIBILITY_TOL]
+    if feasible:
+        return max(feasible, key=lambda c: c[1]["objective"])
+    return min(candidates, key=lambda c: c[1]["loss"])
+
+
+def _violations(problem: DesignProblem, u, pattern=None) -> list[str]:
+    from designer.fabrication import design_rule_check
+
+    family = get_family(problem.spec.family)
+    q = get_family(problem.spec.family).replace(problem.spec.sample, problem.values_of(u))
+    out = [v.message for v in design_rule_check(family.features(q), problem.spec.fabrication)]
+    if problem.chain is not None:
+        out += [v.message for v in pattern_violations(problem, problem.binarized(u)
+                                                      if pattern is None else pattern)]
+    return out
+
+
+def pattern_violations(problem: DesignProblem, pattern) -> list:
+    """freeform pattern_rule_check of a binarized region pattern (Violation list)."""
+    from designer.families import region
+    from designer.fabrication import pattern_rule_check
+
+    c = problem.chain
+    origin = region.pixel_origin(problem.spec.sample.freeform, problem.models[0].layout)
+    return pattern_rule_check(np.asarray(pattern) > 0.5, c.dx, c.dz, problem.spec.fabrication,
+                              origin=origin, periodic_x=c.periodic_x)
+
+
+def measured_features(problem: DesignProblem, pattern) -> tuple[float, float]:
+    """Smallest solid and void sizes of a binarized pattern (m), measured by opening
+    with discs of 1, 2, ... pixels (freeform/fabrication.smallest_features)."""
+    from designer.fabrication import smallest_features
+
+    c = problem.chain
+    h = min(c.dx, c.dz)
+    n = max(c.shape) + 1
+    return smallest_features(np.asarray(pattern) > 0.5, c.dx, c.dz,
+                             [k * h for k in range(1, n + 1)], periodic_x=c.periodic_x)
+
+
+def run_design(spec: Spec, out_dir: str | Path, config: DesignConfig, *, resume: bool = False,
+               progress: bool = True,
+               on_iteration: Callable[[StartState], None] | None = None) -> DesignResult:
+    """Optimize (or continue optimizing) and keep ``out_dir/checkpoint.json`` current."""
+    out = Path(out_dir)
+    problem = cached_problem(spec, config)
+    ck_path = out / CHECKPOINT
+    saved = None
+    if resume:
+        if not ck_path.exists():
+            raise UsageError(f"{out}: no {CHECKPOINT} to resume from")
+        saved = json.loads(ck_path.read_text())
+        if saved["spec_sha256"] != spec.sha256:
+            raise UsageError(f"{out}: the checkpoint belongs to a different spec "
+                             "(its sha256 differs); resume with the same spec file")
+        if saved["config"] != json.loads(vio.dumps(config.identity())):
+            raise UsageError(f"{out}: the [optimize] settings differ from the checkpointed "
+                             "run (only --iterations may change on resume)")
+        scale = float.fromhex(saved["scale"])
+    else:
+        scale = None
+    u0 = np.asarray(opt.to_unit(problem.x_start, problem.box))
+    n_con = len(problem.constraint_names)
+    if scale is None:
+        # the start design's aggregated figure sets the loss scale (loss -1 at the start)
+        if problem.chain is not None:
+            value = pattern_record(dataclasses.replace(problem, scale=1.0), u0,
+                                   problem.start_pattern())["objective"]
+        else:
+            _, extras = problem.evaluate(u0, (problem.masks(u0), np.zeros(n_con), 1.0))
+            value = float(extras[0])
+        scale = abs(value) if value != 0 and math.isfinite(value) else 1.0
+    problem = dataclasses.replace(problem, scale=scale)
+
+    if saved is not None:
+        starts = [_state_from_json(d, problem) for d in saved["starts"]]
+        start_record = saved["start_record"]
+    else:
+        us = opt.random_starts(u0, config.starts, config.seed, problem.valid)
+        starts = [StartState(j, u, problem.transform.init(u), np.zeros(n_con))
+                  for j, u in enumerate(us)]
+        if problem.chain is not None:
+            start_record = pattern_record(problem, u0, problem.start_pattern())
+        else:
+            loss, extras = problem.evaluate(u0, (problem.masks(u0), np.zeros(n_con), scale))
+            start_record = _record(problem, 0, u0, loss, extras, None, None)
+
+    def checkpoint():
+        vio.write_json(ck_path, {"spec_sha256": spec.sha256,
+                                 "config": config.identity(), "scale": float(scale).hex(),
+                                 "start_record": start_record,
+                                 "starts": [_state_json(s) for s in starts]})
+
+    checkpoint()
+    from tqdm import tqdm
+
+    for st in starts:
+        if st.reason is not None and not (st.reason == "iteration budget"
+                                          and len(st.losses) < config.iterations):
+            continue
+        bar = tqdm(total=config.iterations, initial=len(st.losses), file=sys.stderr,
+                   desc=f"start {st.index + 1}/{len(starts)}", disable=not progress,
+                   leave=True)
+        try:
+            run_start(problem, st, checkpoint=checkpoint, bar=bar, on_iteration=on_iteration)
+        finally:
+            bar.close()
+        checkpoint()
+    per_start = []
+    for st in starts:
+        u, rec = _best_of(problem, st)
+        per_start.append((u, rec, _violations(problem, u)))
+    clean = [j for j, (_, _, v) in enumerate(per_start) if not v] or list(range(len(starts)))
+    best = max(clean, key=lambda j: (max(per_start[j][1]["constraints"], default=0.0)
+                                     <= FEASIBILITY_TOL, per_start[j][1]["objective"]))
+    return DesignResult(problem, tuple(starts), best, per_start[best][0], per_start[best][1],
+                        start_record, tuple(per_start))
+
+
+# ---------------------------------------------------------------------------------
+# outputs
+# ---------------------------------------------------------------------------------
+def design_raw(spec: Spec, params) -> dict:
+    """The spec tree with the ``[sample]`` table of ``params`` (a complete spec)."""
+    raw = copy.deepcopy(spec.raw)
+    raw["sample"] = get_family(spec.family).to_table(params)
+    return raw
+
+
+def convergence_figure(result: DesignResult):
+    import matplotlib
+
+    matplotlib.use("Agg")
+    from matplotlib.figure import Figure
+
+    cfg = result.problem.config
+    fig = Figure(figsize=(6.4, 4.0))
+    ax = fig.subplots()
+    for st in result.starts:
+        its = [r["iteration"] for r in st.history]
+        ax.plot(its, [r["objective"] for r in st.history], marker=".",
+                label=f"start {st.index + 1}" + (" (best)" if st.index == result.best_start
+                                                 else ""))
+    unit = {"coupling": "|beta_c|/E0 (m/V)", "structure_factor": "G/E0",
+            "damage_factor": "G/E_max"}[cfg.objective]
+    agg = f" ({cfg.aggregate} over {len(result.problem.models)} scenarios)" \
+        if len(result.problem.models) > 1 else ""
+    ax.set_xlabel("iteration")
+    ax.set_ylabel(unit)
+    ax.set_title(f"{cfg.objective}{agg}, {cfg.method}")
+    ax.grid(alpha=0.3)
+    ax.legend(fontsize=8)
+    return fig
+
+
+FIGURE_KEYS = (("beta_c_per_field_m_per_V", "|beta_c| per field (m/V)"),
+               ("structure_factor", "structure factor G/E0"),
+               ("damage_factor", "damage factor G/E_max"),
+               ("max_field_in_material_V_per_m", "max field in material (V/m)"))
+
+
+def comparison(result: DesignResult, start_eval: dict, design_eval: dict) -> tuple[dict, str]:
+    """Start vs optimized: variables, figures (from evaluate), robust objective, rules."""
+    p = result.problem
+    start_values = p.values_of(opt.to_unit(p.x_start, p.box))
+    best_values = p.values_of(result.best_u)
+    figures = {}
+    for key, _ in FIGURE_KEYS:
+        a, b = start_eval["coupling"].get(key), design_eval["coupling"].get(key)
+        figures[key] = {"start": a, "optimized": b,
+                        "ratio": (b / a) if (a not in (None, 0) and b is not None) else None}
+    data = {
+        "objective": p.config.objective, "aggregate": p.config.aggregate,
+        "scenarios": [m.scenario.label for m in p.models],
+        "variables": {k: {"start": start_values[k], "optimized": best_values[k],
+                          "bounds": list(p.config.bounds[k])} for k in p.config.keys},
+        "optimizer_objective": {"start": result.start_record["objective"],
+                                "optimized": result.best_record["objective"],
+                                "start_scenarios": result.start_record["scenarios"],
+                                "optimized_scenarios": result.best_record["scenarios"]},
+        "figures": figures,
+        "design_rule_violations": {
+            "start": _violations(p, opt.to_unit(p.x_start, p.box),
+                                 p.start_pattern() if p.chain is not None else None),
+            "optimized": _violations(p, result.best_u)},
+        "best_start": result.best_start,
+        "starts": [{"index": st.index, "iterations": len(st.losses), "stopped": st.reason,
+                    "best_objective": rec["objective"], "violations": v}
+                   for st, (_, rec, v) in zip(result.starts, result.per_start_best)],
+    }
+    if p.chain is not None:
+        data["freeform"] = freeform_summary(result)
+    lines = [f"design: {p.spec.family}, objective {p.config.objective}"
+             + (f" ({p.config.aggregate} of {len(p.models)} scenarios)" if len(p.models) > 1
+                else ""),
+             "", f"  {'variable':28s} {'start':>12s} {'optimized':>12s}   bounds"]
+    for k in p.config.keys:
+        lo, hi = p.config.bounds[k]
+        lines.append(f"  {k:28s} {start_values[k]:12.5g} {best_values[k]:12.5g}   "
+                     f"[{lo:g}, {hi:g}]")
+    lines += ["", f"  {'figure':36s} {'start':>12s} {'optimized':>12s} {'ratio':>8s}"]
+    for key, label in FIGURE_KEYS:
+        f = figures[key]
+        if f["start"] is None and f["optimized"] is None:
+            continue
+        fmt = lambda v: "n/a" if v is None else f"{v:.5g}"  # noqa: E731
+        lines.append(f"  {label:36s} {fmt(f['start']):>12s} {fmt(f['optimized']):>12s} "
+                     f"{fmt(f['ratio']):>8s}")
+    lines.append(f"  {'optimizer objective':36s} {result.start_record['objective']:12.5g} "
+                 f"{result.best_record['objective']:12.5g}")
+    v = data["design_rule_violations"]["optimized"]
+    if p.chain is not None:
+        fr = data["freeform"]
+        lines += ["", f"  free-form region: {fr['pixels'][0]} x {fr['pixels'][1]} pixels, "
+                  f"requested minimum length {fr['length_rule_m'] * 1e9:.4g} nm, measured "
+                  f"smallest solid {fr['smallest_solid_m'] * 1e9:.4g} nm, void "
+                  f"{fr['smallest_void_m'] * 1e9:.4g} nm (pixel steps)"]
+    lines += ["", "  design-rule check: " + ("clean" if not v else f"{len(v)} violation(s)")]
+    lines += [f"    {m}" for m in v]
+    for s in data["starts"]:
+        lines.append(f"  start {s['index'] + 1}: {s['iterations']} iterations, "
+                     f"{s['stopped']}, best {s['best_objective']:.5g}")
+    return data, "\n".join(lines)
+
+
+def freeform_summary(result: DesignResult) -> dict:
+    """Free-form facts of the best design: filter, projection, measured length scales."""
+    from designer import freeform as ff
+
+    p = result.problem
+    c = p.chain
+    pattern = p.binarized(result.best_u)
+    st = result.starts[result.best_start]
+    solid, void = measured_features(p, pattern)
+    rho = p.x_of(result.best_u)[p.n_keys:].reshape(c.shape)
+    last_beta = p.beta_at(max(len(st.losses) - 1, 0))
+    return {"pixels": list(c.shape), "pixel_m": [c.dx, c.dz], "periodic_x": c.periodic_x,
+            "filter_radius_m": c.radius_m, "threshold_spread": c.delta_eta,
+            "length_rule_m": length_rule(p.spec),
+            "robust_length_m": (ff.robust_length_scale(c.radius_m, c.delta_eta)
+                                if c.radius_m else None),
+            "final_beta": last_beta, "binarized_at": "beta = inf (nominal threshold 0.5)",
+            "grayness_at_final_beta": float(ff.grayness(ff.project(c.filtered(rho),
+                                                                   last_beta))),
+            "solid_fraction": float(np.mean(pattern > 0.5)),
+            "smallest_solid_m": solid, "smallest_void_m": void,
+            "pattern_violations": [v.message for v in pattern_violations(p, pattern)]}
+
+
+def write_outputs(result: DesignResult, out_dir: str | Path, *, status=None) -> dict:
+    """design.toml, evaluation.json, refined.json, design.png, history.json,
+    convergence.png, comparison.json/.txt; returns the comparison dict."""
+    from designer.evaluate import evaluate, evaluation_json
+    from designer.plots import evaluation_figure
+
+    say = status or (lambda m: None)
+    out = Path(out_dir)
+    p = result.problem
+    spec = p.spec
+    raw = design_raw(spec, p.design_params(result.best_u))
+    if p.chain is not None:
+        # the pattern lives on the design grid: pin the step so evaluate uses that grid
+        vio.write_atomic(out / "density.npy", _npy_bytes(p.binarized(result.best_u)))
+        raw.setdefault("solver", {})
+        raw["solver"].setdefault("resolution_nm", p.resolution_m * 1e9)
+    vio.write_atomic(out / "design.toml", dump_spec(raw))
+    design_spec = load_spec(out / "design.toml")
+    say("evaluating the optimized design")
+    ev = evaluate(design_spec)
+    design_eval = evaluation_json(ev)
+    vio.write_json(out / "evaluation.json", design_eval)
+    vio.save_figure(evaluation_figure(ev), out / "design.png")
+    if ev.solver == "fdfd":
+        fine = ev.run.resolution_m / p.config.refine_factor
+        say(f"re-evaluating at {fine * 1e9:.3g} nm")
+        refined = evaluation_json(evaluate(design_spec, resolution_m=fine, refine=True))
+        refined["note"] = (f"step {fine:.4g} m = evaluation step / {p.config.refine_factor:g}; "
+                           "relative_error_estimate from a second solve at 1.5x that step")
+    else:
+        refined = dict(design_eval)
+        refined["note"] = "exact layer-stack solution: no finer grid exists (error 0)"
+    vio.write_json(out / "refined.json", refined)
+    say("evaluating the start design")
+    start_eval = evaluation_json(evaluate(spec, refine=False))
+    data, text = comparison(result, start_eval, design_eval)
+    data["refined"] = {"resolution_m": refined["provenance"].get("resolution_m"),
+                       "beta_c_per_field_m_per_V":
+                           refined["coupling"]["beta_c_per_field_m_per_V"],
+                       "relative_error_estimate": refined["coupling"]["relative_error_estimate"]}
+    vio.write_json(out / "comparison.json", data)
+    vio.write_atomic(out / "comparison.txt", text + "\n")
+    history = {"objective": p.config.objective, "aggregate": p.config.aggregate,
+               "method": p.config.method, "variables": list(p.config.keys),
+               "scenarios": [m.scenario.label for m in p.models],
+               "constraints": list(p.constraint_names), "solver": p.method,
+               "resolution_m": p.resolution_m, "start": result.start_record,
+               "best_start": result.best_start, "best": result.best_record,
+               "starts": [{"index": st.index, "stopped": st.reason, "history": st.history}
+                          for st in result.starts]}
+    vio.write_json(out / "history.json", history)
+    vio.save_figure(convergence_figure(result), out / "convergence.png")
+    return data
+
+
+def _npy_bytes(a) -> bytes:
+    import io
+
+    buf = io.BytesIO()
+    np.save(buf, np.asarray(a, dtype=float), allow_pickle=False)
+    return buf.getvalue()
+
+
+def design_command(args) -> int:
+    """``velomatch design SPEC --out DIR [--resume] [--overwrite] [--iterations N]``."""
+    spec = load_spec(args.spec)
+    config = parse_optimize(spec, getattr(args, "iterations", None))
+    out = vio.prepare_output_dir(args.out, overwrite=getattr(args, "overwrite", False),
+                                 resume=getattr(args, "resume", False))
+
+    def status(message):
+        print(f"  {message}", file=sys.stderr, flush=True)
+
+    print(f"designing {args.spec} -> {out}", file=sys.stderr)
+    result = run_design(spec, out, config, resume=getattr(args, "resume", False))
+    write_outputs(result, out, status=status)
+    print((out / "comparison.txt").read_text(), end="")
+    return 0

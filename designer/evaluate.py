@@ -1,0 +1,354 @@
+"""From a spec to coupling figures: fields, the coupling integral, error estimate.
+
+This is the pipeline every command shares (``evaluate``, ``sweep``, ``compare``,
+``design``'s re-evaluation).  The physics is in ``solvers``; this module decides
+which solver to use, at which resolution, and assembles the result.
+
+Solver choice (``[solver] method``): ``"layers"`` uses the exact transfer-matrix
+solution where the sample is a planar stack (unpatterned membranes, prisms);
+``"fdfd"`` always solves on the Yee grid; ``"auto"`` (default) takes the exact
+solver when the sample is layered and FDFD otherwise.
+
+Error estimate (FDFD): the coupling is computed at the chosen step h and again at
+1.5 h; assuming error ∝ h^p with p = 1 (conservative: subpixel averaging gives
+between first and second order where corners are present), the error of the
+reported value is estimated as |I_h − I_1.5h| / (1.5^p − 1) / |I_h|
+(L. F. Richardson, Phil. Trans. R. Soc. A 210, 307, 1911).  The layer-stack solver is
+exact up to rounding; its estimate is 0.
+
+Largest field in material (DESIGN.md §4): at re-entrant corners of sharp-edged
+dielectrics the field is singular, so the sampled maximum does not converge.  Real
+corners are rounded: cells closer to a polygon corner than the fabrication rules'
+``corner_radius_nm`` are left out of the maximum.  The rule used is reported.
+
+Open paths (electrons crossing a membrane) have no interaction length; their
+gradient, structure factor and damage factor use the structure's thickness along
+the path as the length (``gradient_length_m`` in the output).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import Any, Callable
+
+import numpy as np
+from scipy import constants
+
+from designer.families import get_family
+from designer.spec import Spec, parse_spec
+
+C0 = constants.c
+CORNER_RULE = "cells within corner_radius of a polygon corner excluded"
+
+
+@dataclass(frozen=True)
+class PathCoupling:
+    """Coupling of the spec's path for a 1 V/m incident wave, from one solver run."""
+
+    integral_V: complex                # I for E0 = 1 V/m
+    max_field_in_material: float | None  # |E|max in material for E0 = 1 V/m
+    resolution_m: float | None
+    fields: Any = None                 # solvers.fdfd.Fields (FDFD runs)
+    stack: Any = None                  # solvers.layers.StackSolution (layer runs)
+    layout: Any = None
+    map_x_m: np.ndarray | None = None  # open paths: lateral positions across the cell
+    map_integral_V: np.ndarray | None = None
+
+
+@dataclass(frozen=True)
+class Evaluation:
+    """Everything ``velomatch evaluate`` reports about one spec."""
+
+    spec: Spec
+    solver: str
+    angle_rad: float
+    peak_field_V_per_m: float
+    omega: float
+    run: PathCoupling
+    relative_error: float
+    interaction_length_m: float | None
+    gradient_length_m: float | None
+    e_max_rule: str
+
+
+def angular_frequency(wavelength_m: float) -> float:
+    return 2.0 * math.pi * C0 / wavelength_m
+
+
+def choose_method(spec: Spec) -> str:
+    """``"layers"`` or ``"fdfd"`` for this spec (see the module docstring)."""
+    family = get_family(spec.family)
+    layered = family.layer_stack(spec.sample, spec.context) is not None
+    if spec.solver.method == "layers":
+        if not layered:
+            from designer.errors import SpecError
+
+            raise SpecError(spec.source, "solver.method", "this sample is not a planar layer "
+                            "stack; use \"fdfd\" or \"auto\"", "layers")
+        return "layers"
+    if spec.solver.method == "fdfd":
+        return "fdfd"
+    return "layers" if layered else "fdfd"
+
+
+def default_resolution(spec: Spec, values: dict | None = None) -> float:
+    """Grid step from the wavelength and the densest material (30 cells per wavelength)."""
+    from solvers.fdfd import spacing_for
+
+    family = get_family(spec.family)
+    probe = family.layout(spec.sample, spec.context, spec.laser.wavelength_m / 20.0)
+    eps_x, eps_z = family.permittivity(spec.sample, probe, values)
+    eps_max = max(float(np.max(np.abs(np.asarray(eps_x)))),
+                  float(np.max(np.abs(np.asarray(eps_z)))))
+    return spacing_for(spec.laser.wavelength_m, eps_max)
+
+
+# -- one FDFD run --------------------------------------------------------------------
+
+def fdfd_problem(layout, omega: float):
+    """The FDFD problem of a family's simulation layout (incident field 1 V/m)."""
+    from solvers.fdfd import FdfdProblem, Pml, PlaneWave
+
+    source = PlaneWave(angle_rad=layout.angle_rad, eps_incidence=layout.eps_incidence,
+                       side=layout.from_side, amplitude_V_per_m=1.0,
+                       z_source=layout.z_source_m)
+    return FdfdProblem(grid=layout.grid, omega=omega,
+                       pml=Pml(cells_x=layout.pml_cells_x, cells_z=layout.pml_cells_z),
+                       source=source)
+
+
+def corner_exclusion_mask(layout, polygons, radius_m: float) -> np.ndarray:
+    """True at cell centres closer than ``radius_m`` to a polygon corner inside the cell.
+
+    Vertices on the periodic boundary or outside the grid are not corners of the
+    physical structure (the polygon continues in the next period or into the PML).
+    """
+    grid = layout.grid
+    keep = np.zeros(grid.shape, dtype=bool)
+    if radius_m <= 0:
+        return keep
+    xc, zc = grid.hy_coords()
+    X, Z = np.meshgrid(xc, zc, indexing="ij")
+    tol = 1e-3 * grid.dx
+    x_lo, x_hi = grid.x0, grid.x0 + grid.size_x
+    z_lo, z_hi = grid.z0, grid.z0 + grid.size_z
+    for poly in polygons:
+        for vx, vz in np.asarray(poly.vertices_m):
+            if layout.pml_cells_x == 0 and (abs(vx - x_lo) < tol or abs(vx - x_hi) < tol):
+                continue
+            if not (x_lo - tol <= vx <= x_hi + tol and z_lo <= vz <= z_hi):
+                continue
+            if layout.pml_cells_x == 0:
+                dxp = (X - vx + 0.5 * grid.size_x) % grid.size_x - 0.5 * grid.size_x
+            else:
+                dxp = X - vx
+            keep |= dxp**2 + (Z - vz) ** 2 < radius_m**2
+    return keep
+
+
+def run_fdfd(spec: Spec, resolution_m: float, *, force: bool = False,
+             values: dict | None = None, with_map: bool = True) -> PathCoupling:
+    """Solve the spec's sample once on the Yee grid and integrate along its path."""
+    from solvers import coupling
+    from solvers.fdfd import solve
+
+    family = get_family(spec.family)
+    layout = family.layout(spec.sample, spec.context, resolution_m)
+    eps_x, eps_z = family.permittivity(spec.sample, layout, values)
+    omega = angular_frequency(spec.laser.wavelength_m)
+    fields = solve(fdfd_problem(layout, omega), np.asarray(eps_x), np.asarray(eps_z),
+                   force=force)
+    v = spec.beam.velocity_m_per_s
+    path = layout.path
+    map_x = map_i = None
+    if path.direction == "x":
+        n_periods = 1
+        if path.length_m is not None and layout.period_m:
+            n_periods = max(1, int(round(path.length_m / layout.period_m)))
+        integral, _ = coupling.coupling_along_x(fields, path.z_m, v, n_periods=n_periods)
+    else:
+        g = layout.grid
+        # the Floquet planes must sit on Ex rows; move them outward onto the nearest row
+        z1 = g.z0 + math.floor((path.z_below_m - g.z0) / g.dz + 1e-9) * g.dz
+        z2 = g.z0 + math.ceil((path.z_above_m - g.z0) / g.dz - 1e-9) * g.dz
+        args = (z1, z2, path.eps_below, path.eps_above, v)
+        integral = complex(np.asarray(coupling.coupling_along_z(fields, path.x_m, *args))[0])
+        if with_map:
+            map_x = layout.grid.x0 + layout.grid.size_x * (np.arange(32) + 0.5) / 32
+            map_i = np.asarray(coupling.coupling_along_z(fields, map_x, *args))
+    polygons = family.polygons(spec.sample, spec.context, layout)
+    excluded = corner_exclusion_mask(layout, polygons, spec.fabrication.corner_radius_m)
+    mask = np.asarray(layout.material_mask) & ~excluded
+    e_max = float(fields.max_field_in(mask)) if mask.any() else None
+    return PathCoupling(integral_V=complex(integral), max_field_in_material=e_max,
+                        resolution_m=layout.grid.dx, fields=fields, layout=layout,
+                        map_x_m=map_x, map_integral_V=map_i)
+
+
+# -- the exact layer-stack run -------------------------------------------------------
+
+def run_layers(spec: Spec) -> PathCoupling:
+    """Exact transfer-matrix solution and coupling for layered samples."""
+    from solvers import layers
+
+    family = get_family(spec.family)
+    stack = family.layer_stack(spec.sample, spec.context)
+    layout = family.layout(spec.sample, spec.context, spec.laser.wavelength_m / 20.0)
+    omega = angular_frequency(spec.laser.wavelength_m)
+    sol = layers.solve_plane_wave(np.asarray(stack.eps), np.asarray(stack.z_interfaces),
+                                  omega, layout.angle_rad, incidence=layout.from_side)
+    v = spec.beam.velocity_m_per_s
+    path = layout.path
+    if path.direction == "z":
+        integral = complex(np.asarray(layers.coupling_normal(sol, path.x_m, v)))
+    else:
+        length = path.length_m
+        if length is None:
+            raise ValueError("a path along x needs an interaction length")
+        value, _ = layers.coupling_parallel(sol, path.z_m, v, length=length)
+        integral = complex(np.asarray(value))
+    return PathCoupling(integral_V=integral, max_field_in_material=_stack_e_max(stack, sol),
+                        resolution_m=None, stack=sol, layout=layout)
+
+
+def _stack_e_max(stack, sol) -> float | None:
+    """Largest |E| inside the material layers (and within 2 wavelengths of a material
+    half-space's surface), sampled densely; the stack is planar, so no corner rule."""
+    from solvers import layers
+
+    z_if = list(stack.z_interfaces)
+    eps = list(stack.eps)
+    lam = 2 * math.pi * C0 / float(sol.omega)
+    segments = []
+    for j, e in enumerate(eps):
+        if abs(e - 1.0) < 1e-12:
+            continue
+        lo = z_if[j - 1] if j > 0 else z_if[0] - 2 * lam
+        hi = z_if[j] if j < len(z_if) else z_if[-1] + 2 * lam
+        if hi > lo:
+            segments.append(np.linspace(lo, hi, 801)[1:-1])
+    if not segments:
+        return None
+    z = np.concatenate(segments)
+    ex, ez, _ = layers.stack_fields(sol, 0.0, z)
+    return float(np.max(np.sqrt(np.abs(np.asarray(ex)) ** 2 + np.abs(np.asarray(ez)) ** 2)))
+
+
+# -- the whole evaluation ------------------------------------------------------------
+
+def evaluate(spec: Spec, *, resolution_m: float | None = None, refine: bool | None = None,
+             progress: Callable[[str], None] | None = None) -> Evaluation:
+    """Coupling figures of the spec's sample (see the module docstring)."""
+    say = progress or (lambda message: None)
+    method = choose_method(spec)
+    family = get_family(spec.family)
+    angle = family.laser_angle(spec.sample, spec.context)
+    omega = angular_frequency(spec.laser.wavelength_m)
+    refine = spec.solver.refine if refine is None else refine
+    if method == "layers":
+        say("solving the layer stack (exact)")
+        run = run_layers(spec)
+        rel_error = 0.0
+        solver = "layers"
+    else:
+        h = resolution_m or spec.solver.resolution_m or default_resolution(spec)
+        say(f"FDFD solve at {h * 1e9:.3g} nm")
+        run = run_fdfd(spec, h, force=spec.solver.force)
+        rel_error = None
+        if refine:
+            say(f"FDFD solve at {1.5 * h * 1e9:.3g} nm (error estimate)")
+            coarse = run_fdfd(spec, 1.5 * h, force=True, with_map=False)
+            ratio = coarse.resolution_m / run.resolution_m
+            if abs(run.integral_V) > 0:
+                rel_error = (abs(run.integral_V - coarse.integral_V) / (ratio - 1.0)
+                             / abs(run.integral_V))
+        solver = "fdfd"
+    layout = run.layout
+    eps_inc = complex(layout.eps_incidence)
+    e0 = spec.laser.peak_field_in(math.sqrt(abs(eps_inc.real)) if eps_inc.real > 0 else 1.0)
+    interaction = None
+    gradient_length = None
+    if layout.path.direction == "x":
+        interaction = layout.path.length_m
+        if interaction is not None and layout.period_m and solver == "fdfd":
+            interaction = max(1, round(interaction / layout.period_m)) * layout.period_m
+        gradient_length = interaction
+    else:
+        bottom, top = layout.structure_z_m
+        gradient_length = (top - bottom) if top > bottom else None
+    return Evaluation(spec=spec, solver=solver, angle_rad=angle, peak_field_V_per_m=e0,
+                      omega=omega, run=run, relative_error=rel_error,
+                      interaction_length_m=interaction, gradient_length_m=gradient_length,
+                      e_max_rule=("planar stack: no corners" if solver == "layers" else
+                                  f"{CORNER_RULE} "
+                                  f"({spec.fabrication.corner_radius_m * 1e9:g} nm)"))
+
+
+def coupling_figures(ev: Evaluation) -> dict:
+    """The ``coupling`` block of the JSON contract, at the spec's peak field."""
+    from solvers.coupling import beta_from_integral
+
+    e0 = ev.peak_field_V_per_m
+    integral = ev.run.integral_V * e0
+    beta = abs(complex(beta_from_integral(integral, ev.omega)))
+    gradient = kappa = damage = None
+    e_max = None if ev.run.max_field_in_material is None else ev.run.max_field_in_material * e0
+    if ev.gradient_length_m:
+        gradient = abs(integral) / ev.gradient_length_m
+        kappa = gradient / e0
+        if e_max:
+            damage = gradient / e_max
+    out = {
+        "integral_V": [integral.real, integral.imag],
+        "beta_c": beta,
+        "beta_c_per_field_m_per_V": beta / e0,
+        "interaction_length_m": ev.interaction_length_m,
+        "gradient_length_m": ev.gradient_length_m,
+        "gradient_V_per_m": gradient,
+        "structure_factor": kappa,
+        "max_field_in_material_V_per_m": e_max,
+        "damage_factor": damage,
+        "relative_error_estimate": ev.relative_error,
+        "max_field_rule": ev.e_max_rule,
+        "classical_max_energy_gain_eV": abs(integral),
+    }
+    run = ev.run
+    if run.map_x_m is not None:
+        betas = np.abs(np.asarray(beta_from_integral(run.map_integral_V * e0, ev.omega)))
+        out["map"] = {"x_m": run.map_x_m, "beta_c": betas}
+        spot = ev.spec.path.electron_spot_m
+        if spot:
+            from solvers.coupling import spot_average
+
+            mean_abs, mean_sq = spot_average(run.map_x_m, betas, ev.run.layout.path.x_m, spot,
+                                             period=ev.run.layout.grid.size_x)
+            out["spot_average"] = {"fwhm_m": spot, "mean_beta_c": mean_abs,
+                                   "rms_beta_c": math.sqrt(mean_sq)}
+    return out
+
+
+def evaluation_json(ev: Evaluation) -> dict:
+    """The full ``velomatch evaluate --json`` object (contract keys first)."""
+    from designer.provenance import provenance
+
+    spec = ev.spec
+    return {
+        "electron": {"voltage_V": spec.beam.voltage_V, "beta": spec.beam.beta,
+                     "gamma": spec.beam.gamma,
+                     "velocity_m_per_s": spec.beam.velocity_m_per_s},
+        "laser": {"wavelength_m": spec.laser.wavelength_m,
+                  "angle_deg": math.degrees(ev.angle_rad),
+                  "peak_field_V_per_m": ev.peak_field_V_per_m,
+                  "from": spec.laser.from_side},
+        "sample": {"family": spec.family},
+        "coupling": coupling_figures(ev),
+        "provenance": provenance(spec.sha256, solver=ev.solver,
+                                 resolution_m=ev.run.resolution_m),
+    }
+
+
+def evaluate_raw(raw: dict, *, source: str = "<spec>", base_dir=None, **options) -> dict:
+    """Parse a raw spec tree and return the ``evaluate`` JSON object (for sweeps)."""
+    spec = parse_spec(raw, source=source, base_dir=base_dir)
+    return evaluation_json(evaluate(spec, **options))
