@@ -93,7 +93,8 @@ def choose_method(spec: Spec) -> str:
 
 
 def default_resolution(spec: Spec, values: dict | None = None) -> float:
-    """Grid step from the wavelength and the densest material (30 cells per wavelength)."""
+    """Grid step from the wavelength and the densest material (solvers.fdfd.spacing_for:
+    DEFAULT_CELLS_PER_WAVELENGTH cells per wavelength there)."""
     from solvers.fdfd import spacing_for
 
     family = get_family(spec.family)

@@ -258,7 +258,33 @@ def _kz(eps, kx, k0, xp):
     return xp.where(xp.imag(root) < 0, -root, root)
 
 
-def floquet_orders(hy_lo, hy_hi, x_first, dx, dz, eps, omega, bloch_kx, *, xp=None):
+DISPERSIONS = ("grid", "continuum")
+
+
+def _order_wavenumbers(eps, kx_m, k0, dx, dz, dispersion, xp):
+    """(K_x, k_z) of each Floquet order in a homogeneous medium.
+
+    ``dispersion="grid"``: the Yee grid's own plane waves, which the FDFD solution
+    is made of: ``K_x = (2/dx) sin(kx dx/2)`` is what the staggered x difference gives
+    (so ``Ez = -K_x Hy/(w eps0 eps)``) and ``k_z`` solves the discrete dispersion
+    relation ``K_x^2 + ((2/dz) sin(kz dz/2))^2 = eps k0^2`` (A. Taflove & S. C.
+    Hagness, Computational Electrodynamics, 3rd ed., 2005, ch. 4).  Using them makes
+    the split of a grid wave into orders exact, so an empty domain couples nothing
+    to rounding.  ``"continuum"``: ``K_x = kx``, ``kz = sqrt(eps k0^2 - kx^2)``, for
+    fields sampled from a closed form.  Branch: Im kz >= 0, Re kz >= 0 when real.
+    """
+    if dispersion == "continuum":
+        return kx_m, _kz(eps, kx_m, k0, xp)
+    big_kx = (2.0 / dx) * xp.sin(kx_m * dx / 2.0)
+    kz_c = _kz(eps, big_kx, k0, xp)
+    kz = (2.0 / dz) * xp.arcsin(xp.asarray(kz_c * dz / 2.0, dtype=complex))
+    kz = xp.where(xp.imag(kz) < 0, -kz, kz)
+    kz = xp.where((xp.abs(xp.imag(kz)) < 1e-12 * xp.abs(kz)) & (xp.real(kz) < 0), -kz, kz)
+    return big_kx, kz
+
+
+def floquet_orders(hy_lo, hy_hi, x_first, dx, dz, eps, omega, bloch_kx, *, xp=None,
+                   dispersion="grid"):
     """Up/down amplitudes of every Floquet order on the plane between two Hy rows.
 
     The rows ``hy_lo``, ``hy_hi`` sit at ``z_p - dz/2`` and ``z_p + dz/2`` at
@@ -267,7 +293,9 @@ def floquet_orders(hy_lo, hy_hi, x_first, dx, dz, eps, omega, bloch_kx, *, xp=No
     ``kx_m = k_b + 2 pi m / Lambda`` (m centred on the reduced Bloch vector),
     the two rows give a 2x2 system per order.  Two Hy rows are used rather than Hy and
     Ex because Hy is the solver's primary unknown and the pair fixes (a_m, b_m) with an
-    error O(dz (kz_grid - kz)) instead of the O(dz^2) of averaging Hy onto the Ex row.
+    error O(dz (kz_grid - kz)) instead of the O(dz^2) of averaging Hy onto the Ex row;
+    with ``dispersion="grid"`` (default, see :func:`_order_wavenumbers`) kz_m is the
+    grid's own and the split of a grid wave is exact.
     ``xp``: array namespace, inferred from the inputs when None.
 
     Returns ``(kx_m, kz_m, a_m, b_m)``, each (nx,).
@@ -288,7 +316,7 @@ def floquet_orders(hy_lo, hy_hi, x_first, dx, dz, eps, omega, bloch_kx, *, xp=No
     idx = xp.mod(m, nx).astype(int)
     f_lo = xp.fft.fft(hy_lo * bloch)[idx] / nx * corr
     f_hi = xp.fft.fft(hy_hi * bloch)[idx] / nx * corr
-    kz = _kz(eps, kx_m, k0, xp)
+    _, kz = _order_wavenumbers(eps, kx_m, k0, dx, dz, dispersion, xp)
     ph = xp.exp(1j * kz * dz / 2.0)
     det = 1.0 / ph**2 - ph**2
     a = (f_lo / ph - f_hi * ph) / det
@@ -324,7 +352,7 @@ def _order_field(coef, a, b, kz, z, z_p, lat, xp):
 
 
 def _coupling_z(ez, hy, *, nx, dx, dz, x0, z0, x, z1, z2, eps_below, eps_above, omega,
-                bloch_kx, velocity, spot, xp):
+                bloch_kx, velocity, spot, xp, dispersion="grid"):
     ez = xp.asarray(ez, dtype=complex)
     hy = xp.asarray(hy, dtype=complex)
     nz = ez.shape[1]
@@ -353,17 +381,19 @@ def _coupling_z(ez, hy, *, nx, dx, dz, x0, z0, x, z1, z2, eps_below, eps_above, 
 
     x_first = x0 + 0.5 * dx
     kxa, kza, aa, ba = floquet_orders(hy[:, k2 - 1], hy[:, k2], x_first, dx, dz, eps_above,
-                                      omega, bloch_kx, xp=xp)
+                                      omega, bloch_kx, xp=xp, dispersion=dispersion)
     kxb, kzb, ab, bb = floquet_orders(hy[:, k1 - 1], hy[:, k1], x_first, dx, dz, eps_below,
-                                      omega, bloch_kx, xp=xp)
+                                      omega, bloch_kx, xp=xp, dispersion=dispersion)
     k0 = omega / C0
-    eva = xp.real(eps_above * k0**2 - kxa**2) < 0
-    evb = xp.real(eps_below * k0**2 - kxb**2) < 0
+    big_kxa, _ = _order_wavenumbers(eps_above, kxa, k0, dx, dz, dispersion, xp)
+    big_kxb, _ = _order_wavenumbers(eps_below, kxb, k0, dx, dz, dispersion, xp)
+    eva = xp.real(eps_above * k0**2 - big_kxa**2) < 0
+    evb = xp.real(eps_below * k0**2 - big_kxb**2) < 0
     # evanescent orders: keep only the part decaying away from the structure
     ba = xp.where(eva, 0.0, ba)
     ab = xp.where(evb, 0.0, ab)
-    ca = -kxa / (omega * EPS0 * eps_above)   # Ez per unit Hy, order by order
-    cb = -kxb / (omega * EPS0 * eps_below)
+    ca = -big_kxa / (omega * EPS0 * eps_above)   # Ez per unit Hy, order by order
+    cb = -big_kxb / (omega * EPS0 * eps_below)
     # lateral factors exp(i kx_m x) with their periodic parts interpolated linearly between
     # the Ez columns, exactly as the sampled Ez is: the result at any x is then the linear
     # interpolation of the results at the columns, and the box subtraction stays exact
@@ -406,10 +436,18 @@ def _coupling_z(ez, hy, *, nx, dx, dz, x0, z0, x, z1, z2, eps_below, eps_above, 
     zu_, vu = nodes(ks, k2)
     zero = xp.zeros_like(aa)
     pa, pb = ~eva, ~evb
-    ref_u = _order_field(ca, xp.where(pa, aa, zero), xp.where(pa, ba, zero), kza, zu_, z2,
-                         lat_a, xp)
-    ref_l = _order_field(cb, xp.where(pb, ab, zero), xp.where(pb, bb, zero), kzb, zl, z1,
-                         lat_b, xp)
+    def reference(coef, a, b, kz, ka, kb, z_p, lat):
+        # the order field at the same nodes and with the same plane averaging as the
+        # samples (nodes()), so that a pure grid wave is subtracted exactly
+        cen = _order_field(coef, a, b, kz, zc[ka - 1:kb + 1], z_p, lat, xp)
+        lo = 0.5 * (cen[:, 0] + cen[:, 1])
+        hi = 0.5 * (cen[:, -2] + cen[:, -1])
+        return xp.concatenate([lo[:, None], cen[:, 1:-1], hi[:, None]], axis=1)
+
+    ref_u = reference(ca, xp.where(pa, aa, zero), xp.where(pa, ba, zero), kza, ks, k2, z2,
+                      lat_a)
+    ref_l = reference(cb, xp.where(pb, ab, zero), xp.where(pb, bb, zero), kzb, k1, ks, z1,
+                      lat_b)
     box = (phase_integral((vl - ref_l).T, zl, kappa, xp=xp)
            + phase_integral((vu - ref_u).T, zu_, kappa, xp=xp))
 
@@ -428,12 +466,12 @@ def _coupling_z(ez, hy, *, nx, dx, dz, x0, z0, x, z1, z2, eps_below, eps_above, 
     return box + tails
 
 
-_Z_STATIC = ("nx", "dx", "dz", "x0", "z0", "z1", "z2", "spot", "xp")
+_Z_STATIC = ("nx", "dx", "dz", "x0", "z0", "z1", "z2", "spot", "xp", "dispersion")
 _coupling_z_jit = jax.jit(_coupling_z, static_argnames=_Z_STATIC)
 
 
 def coupling_z_kernel(ez, hy, *, nx, dx, dz, x0, z0, x, z1, z2, eps_below, eps_above,
-                      omega, bloch_kx, velocity, spot=None, xp=None):
+                      omega, bloch_kx, velocity, spot=None, xp=None, dispersion="grid"):
     """Kernel of :func:`coupling_along_z` on bare arrays (Yee positions of
     :mod:`solvers.grid`).  ``x`` may be an array of lateral positions; grid numbers,
     ``z1``, ``z2`` and ``spot`` are static (Python numbers).  ``xp``: array namespace,
@@ -444,14 +482,16 @@ def coupling_z_kernel(ez, hy, *, nx, dx, dz, x0, z0, x, z1, z2, eps_below, eps_a
     xp = _resolve(xp, ez, hy, x, eps_below, eps_above, omega, bloch_kx, velocity)
     kw = dict(nx=nx, dx=dx, dz=dz, x0=x0, z0=z0, x=x, z1=z1, z2=z2, eps_below=eps_below,
               eps_above=eps_above, omega=omega, bloch_kx=bloch_kx, velocity=velocity,
-              spot=spot)
+              spot=spot, dispersion=dispersion)
+    if dispersion not in DISPERSIONS:
+        raise ValueError(f"dispersion must be one of {DISPERSIONS}, got {dispersion!r}")
     if xp is np:
         return _coupling_z(ez, hy, xp=np, **kw)
     return _coupling_z_jit(ez, hy, xp=jnp, **kw)
 
 
 def coupling_along_z(fields, x, z1, z2, eps_below, eps_above, velocity, spot=None, *,
-                     xp=None):
+                     xp=None, dispersion="grid"):
     """Coupling ``I(x) = int_{-inf}^{inf} Ez(x, z) exp(-i w z / v) dz`` (V) of an
     electron moving along +z at lateral position(s) ``x``.
 
@@ -472,7 +512,9 @@ def coupling_along_z(fields, x, z1, z2, eps_below, eps_above, velocity, spot=Non
     infinity).  ``spot = (z_centre, radius)`` multiplies the whole path by the field
     envelope ``exp(-(z - z_c)^2 / radius^2)``; the tails are then sampled to 6 radii.
     Runs in numpy for numpy fields unless ``xp`` says otherwise (see
-    :func:`coupling_z_kernel`).
+    :func:`coupling_z_kernel`).  ``dispersion``: "grid" for fields solved on the Yee
+    grid (the FDFD solver's), "continuum" for closed-form fields sampled on a grid
+    (:func:`_order_wavenumbers`).
 
     Returns a complex array shaped like ``x`` (at least 1D).
     """
@@ -480,7 +522,8 @@ def coupling_along_z(fields, x, z1, z2, eps_below, eps_above, velocity, spot=Non
     return coupling_z_kernel(fields.ez, fields.hy, nx=g.nx, dx=g.dx, dz=g.dz, x0=g.x0,
                              z0=g.z0, x=x, z1=z1, z2=z2, eps_below=eps_below,
                              eps_above=eps_above, omega=fields.omega,
-                             bloch_kx=fields.bloch_kx, velocity=velocity, spot=spot, xp=xp)
+                             bloch_kx=fields.bloch_kx, velocity=velocity, spot=spot, xp=xp,
+                             dispersion=dispersion)
 
 
 # --------------------------------------------------------------------------- figures of merit

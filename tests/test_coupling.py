@@ -144,6 +144,8 @@ def test_periodic_path_lattice_sum_vs_brute_force():
     assert abs(complex(total) - ref) < 2e-3 * abs(ref)
 
 
+# Fields here are closed forms sampled on a grid, not Yee-grid solutions, so the open-path
+# kernel is told to use the continuum dispersion (dispersion="continuum").
 def film_fields(eps, zi, theta, ppw, box_margin=3.0, nx=4, period=LAM):
     sol = L.solve_plane_wave(eps, zi, OMEGA, theta)
     dz = LAM / ppw
@@ -162,8 +164,10 @@ def test_open_path_box_independence_and_exact_film():
     sol, f = film_fields(eps, zi, 0.5, ppw=80)
     x_e = 0.3e-6
     exact = complex(L.coupling_normal(sol, x_e, V100))
-    tight = complex(C.coupling_along_z(f, x_e, -0.5 * LAM, 0.5 * LAM, eps[0], eps[-1], V100)[0])
-    grown = complex(C.coupling_along_z(f, x_e, -1.5 * LAM, 1.5 * LAM, eps[0], eps[-1], V100)[0])
+    tight = complex(C.coupling_along_z(f, x_e, -0.5 * LAM, 0.5 * LAM, eps[0], eps[-1], V100,
+                                      dispersion="continuum")[0])
+    grown = complex(C.coupling_along_z(f, x_e, -1.5 * LAM, 1.5 * LAM, eps[0], eps[-1], V100,
+                                      dispersion="continuum")[0])
     assert abs(grown - tight) < 1e-3 * abs(tight)
     assert abs(tight - exact) < 2e-3 * abs(exact)
 
@@ -176,7 +180,8 @@ def test_open_path_convergence_and_richardson():
     vals = []
     for ppw in (40, 80):
         sol, f = film_fields(eps, zi, 0.6, ppw=ppw, box_margin=1.0)
-        vals.append(complex(C.coupling_along_z(f, 0.0, -0.5 * LAM, 0.5 * LAM, 1.0, 1.0, V100)[0]))
+        vals.append(complex(C.coupling_along_z(f, 0.0, -0.5 * LAM, 0.5 * LAM, 1.0, 1.0, V100,
+                                               dispersion="continuum")[0]))
     exact = complex(L.coupling_normal(sol, 0.0, V100))
     e1, e2 = abs(vals[0] - exact), abs(vals[1] - exact)
     assert 2.5 < e1 / e2 < 6.0
@@ -219,8 +224,10 @@ def test_open_path_floquet_orders_of_a_grating_like_field():
     grid = Grid(nx, 320, period / nx, dz, 0.0, -2 * LAM)
     f = sample_on_grid(func, grid, OMEGA, kb)
     xs = np.array([0.0, 0.37 * period])
-    a = np.asarray(C.coupling_along_z(f, xs, -0.25 * LAM, 0.25 * LAM, eps_b, eps_a, V100))
-    b = np.asarray(C.coupling_along_z(f, xs, -1.25 * LAM, 1.25 * LAM, eps_b, eps_a, V100))
+    a = np.asarray(C.coupling_along_z(f, xs, -0.25 * LAM, 0.25 * LAM, eps_b, eps_a, V100,
+                                      dispersion="continuum"))
+    b = np.asarray(C.coupling_along_z(f, xs, -1.25 * LAM, 1.25 * LAM, eps_b, eps_a, V100,
+                                      dispersion="continuum"))
     assert np.all(np.abs(a - b) < 1e-3 * np.abs(a))
 
 
@@ -229,8 +236,10 @@ def test_open_path_with_wide_spot_tends_to_adiabatic_limit():
     eps = [1.0, 4.0, 1.0]
     zi = [0.0, 200e-9]
     sol, f = film_fields(eps, zi, 0.5, ppw=40, box_margin=1.0)
-    plain = complex(C.coupling_along_z(f, 0.0, -0.5 * LAM, 0.5 * LAM, 1.0, 1.0, V100)[0])
+    plain = complex(C.coupling_along_z(f, 0.0, -0.5 * LAM, 0.5 * LAM, 1.0, 1.0, V100,
+                                       dispersion="continuum")[0])
     spot = complex(C.coupling_along_z(f, 0.0, -0.5 * LAM, 0.5 * LAM, 1.0, 1.0, V100,
+                                      dispersion="continuum",
                                       spot=(100e-9, 6 * LAM))[0])
     # (d / R)^2 ~ 1e-3 change from the envelope over the film (common practice, no source)
     assert abs(spot - plain) < 1e-2 * abs(plain)
@@ -246,7 +255,8 @@ def test_gradient_wrt_outer_permittivity_matches_fd():
     def obj(eps_a):
         i = C.coupling_z_kernel(f.ez, f.hy, nx=g.nx, dx=g.dx, dz=g.dz, x0=g.x0, z0=g.z0, x=0.0,
                                 z1=-0.5 * LAM, z2=0.5 * LAM, eps_below=1.0, eps_above=eps_a,
-                                omega=OMEGA, bloch_kx=f.bloch_kx, velocity=V100)
+                                omega=OMEGA, bloch_kx=f.bloch_kx, velocity=V100,
+                                dispersion="continuum")
         return 1e16 * jax.numpy.abs(i[0]) ** 2
 
     obj = jax.jit(obj)

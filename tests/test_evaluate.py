@@ -140,3 +140,15 @@ x_nm = 0.0
     # couplings scale linearly with the field: beta_c = (beta_c per field) * E0
     assert c["beta_c"] == pytest.approx(c["beta_c_per_field_m_per_V"] * 2.0e8, rel=1e-12)
     assert c["interaction_length_m"] is None
+
+
+def test_empty_domain_does_not_couple():
+    # A plane wave in vacuum cannot exchange net energy with an electron moving on a
+    # straight line at v < c (the Lawson-Woodward theorem; J. D. Lawson, IEEE Trans.
+    # Nucl. Sci. 26, 4217, 1979 — citation from memory). The FDFD domain with the film
+    # replaced by vacuum, Floquet tails included, must couple < 1e-6 of the film.
+    film = evaluate(parse_spec(film_raw("fdfd")))
+    raw = film_raw("fdfd")
+    raw["sample"]["material"] = {"n": 1.0}
+    empty = evaluate(parse_spec(raw))
+    assert abs(empty.run.integral_V) < 1e-6 * abs(film.run.integral_V)
