@@ -624,8 +624,8 @@ def _violations(problem: DesignProblem, u, pattern=None) -> list[str]:
 
 def pattern_violations(problem: DesignProblem, pattern) -> list:
     """freeform pattern_rule_check of a binarized region pattern (Violation list)."""
-    from designer.families import region
     from designer.fabrication import pattern_rule_check
+    from designer.families import region
 
     c = problem.chain
     origin = region.pixel_origin(problem.spec.sample.freeform, problem.models[0].layout)
@@ -856,7 +856,7 @@ def freeform_summary(result: DesignResult) -> dict:
 
 def write_outputs(result: DesignResult, out_dir: str | Path, *, status=None) -> dict:
     """design.toml, evaluation.json, refined.json, design.png, history.json,
-    convergence.png, comparison.json/.txt; returns the comparison dict."""
+    convergence.png, comparison.json/.txt, report.html; returns the comparison dict."""
     from designer.evaluate import evaluate, evaluation_json
     from designer.plots import evaluation_figure
 
@@ -906,7 +906,49 @@ def write_outputs(result: DesignResult, out_dir: str | Path, *, status=None) -> 
                           for st in result.starts]}
     vio.write_json(out / "history.json", history)
     vio.save_figure(convergence_figure(result), out / "convergence.png")
+    say("writing the report")
+    write_design_report(out / "report.html", result, ev, design_eval, start_eval, refined,
+                        text)
     return data
+
+
+def write_design_report(path, result: DesignResult, ev, design_eval: dict, start_eval: dict,
+                        refined: dict, comparison_text: str) -> Path:
+    """``DIR/report.html``: the optimized design's figures, start vs optimized, the
+    finer-grid check, the convergence plot and the design picture (self-contained)."""
+    from designer import report as rp
+    from designer.plots import evaluation_figure
+
+    cfg = result.problem.config
+
+    def row(label, key):
+        return (label, rp.fmt(start_eval["coupling"].get(key)),
+                rp.fmt(design_eval["coupling"].get(key)))
+
+    table = rp.Table(("figure", "start", "optimized"),
+                     (row("|beta_c| per field (m/V)", "beta_c_per_field_m_per_V"),
+                      row("structure factor G/E0", "structure_factor"),
+                      row("damage factor G/E_max", "damage_factor"),
+                      row("max field in material (V/m)", "max_field_in_material_V_per_m")),
+                     caption="start design against the optimized design (same solver)",
+                     highlight=(0,))
+    check = rp.Facts((("finer-grid |beta_c| per field",
+                       rp.fmt(refined["coupling"]["beta_c_per_field_m_per_V"], "m/V")),
+                      ("its relative error estimate",
+                       rp.fmt(refined["coupling"]["relative_error_estimate"])),
+                      ("objective", cfg.objective), ("method", cfg.method),
+                      ("variables", ", ".join(cfg.keys))))
+    sections = (rp.evaluation_section(design_eval, "Optimized design"),
+                rp.Section("Start against optimized", (table, check,
+                                                       rp.Paragraph(comparison_text, "note"))),
+                rp.Section("Design and fields", (rp.image(evaluation_figure(ev),
+                                                          "optimized sample and its field"),)),
+                rp.Section("Convergence", (rp.image(convergence_figure(result),
+                                                    "objective per iteration"),)))
+    name = Path(result.problem.spec.source).name
+    rep = rp.Report(f"Design from {name}", subtitle=f"{result.problem.spec.family} sample",
+                    sections=sections, provenance=design_eval.get("provenance"))
+    return rp.write_report(path, rep)
 
 
 def _npy_bytes(a) -> bytes:

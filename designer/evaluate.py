@@ -109,7 +109,7 @@ def default_resolution(spec: Spec, values: dict | None = None) -> float:
 
 def fdfd_problem(layout, omega: float):
     """The FDFD problem of a family's simulation layout (incident field 1 V/m)."""
-    from solvers.fdfd import FdfdProblem, Pml, PlaneWave
+    from solvers.fdfd import FdfdProblem, PlaneWave, Pml
 
     source = PlaneWave(angle_rad=layout.angle_rad, eps_incidence=layout.eps_incidence,
                        side=layout.from_side, amplitude_V_per_m=1.0,

@@ -227,8 +227,7 @@ def freeform_pattern(spec):
     """(layout, region cells, binarized solid pattern) of a spec's free-form region on
     the grid its evaluation uses."""
     from designer.evaluate import default_resolution
-    from designer.families import get_family
-    from designer.families import region
+    from designer.families import get_family, region
 
     family = get_family(spec.family)
     h = spec.solver.resolution_m or default_resolution(spec)

@@ -252,8 +252,10 @@ def test_outputs_reproduce_under_evaluate(tmp_path):
     out = tmp_path / "out"
     for name in ("design.toml", "evaluation.json", "refined.json", "design.png",
                  "history.json", "convergence.png", "comparison.json", "comparison.txt",
-                 "checkpoint.json"):
+                 "checkpoint.json", "report.html"):
         assert (out / name).exists(), name
+    html = (out / "report.html").read_text()
+    assert "Start against optimized" in html and "data:image/png;base64," in html
     again = evaluation_json(evaluate(load_spec(out / "design.toml")))
     stored = json.loads((out / "evaluation.json").read_text())
     assert again["coupling"]["integral_V"] == stored["coupling"]["integral_V"]
