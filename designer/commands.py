@@ -102,7 +102,19 @@ def _coupling_text(result: dict) -> str:
         lines.append(f"  damage factor G/E_max     {c['damage_factor']:.4g}")
     err = c["relative_error_estimate"]
     lines.append("  relative error estimate   " + ("n/a" if err is None else f"{err:.2%}"))
+    lines.extend(_caution(result["laser"]["peak_field_V_per_m"]))
     return "\n".join(lines)
+
+
+def _caution(peak_field_V_per_m: float) -> list[str]:
+    """A safety line for outputs that describe a real laser (fields above 1 MV/m)."""
+    if peak_field_V_per_m is None or peak_field_V_per_m < 1e6:
+        return []
+    from designer.cli import SAFETY_NOTE
+
+    return ["", "Caution: these fields come from an intense (typically class-4) laser and "
+            "can damage the sample; check the damage factor against your material's "
+            "threshold.", SAFETY_NOTE]
 
 
 def run_evaluate(args) -> int:
@@ -184,6 +196,7 @@ def run_spectrum(args) -> int:
             f"photon energy {result['photon_energy_eV']:.4g} eV, "
             f"zero-loss width {spec.spectrum.zlp_fwhm_eV:g} eV",
             "  strongest lines: " + ", ".join(f"l={int(o)}: {p:.3g}" for o, p in strongest)]
+    text.extend(_caution(ev.peak_field_V_per_m))
     _emit(args, result, "\n".join(text))
     return 0
 

@@ -105,6 +105,20 @@ def default_resolution(spec: Spec, values: dict | None = None) -> float:
     return spacing_for(spec.laser.wavelength_m, eps_max)
 
 
+def laser_footprint_radius(spec: Spec, angle_rad: float) -> float | None:
+    """Radius (1/e² intensity) of the laser spot's footprint along an x-path, or None.
+
+    ``[laser] spot_radius_um`` is the radius across the beam; on a surface whose
+    normal makes the angle θ with the beam the footprint is stretched to w / cos θ.
+    The footprint is centred on the interaction length.  Open paths (membranes)
+    ignore it: there the spot is much wider than the film is thick.
+    """
+    w = spec.laser.spot_radius_m
+    if w is None:
+        return None
+    return w / max(math.cos(angle_rad), 1e-3)
+
+
 # -- one FDFD run --------------------------------------------------------------------
 
 def fdfd_problem(layout, omega: float):
@@ -167,7 +181,13 @@ def run_fdfd(spec: Spec, resolution_m: float, *, force: bool = False,
         n_periods = 1
         if path.length_m is not None and layout.period_m:
             n_periods = max(1, int(round(path.length_m / layout.period_m)))
-        integral, _ = coupling.coupling_along_x(fields, path.z_m, v, n_periods=n_periods)
+        radius = laser_footprint_radius(spec, layout.angle_rad)
+        spot = None
+        if radius is not None:
+            g = layout.grid
+            spot = (g.x0 + 0.5 * g.dx + 0.5 * n_periods * layout.period_m, radius)
+        integral, _ = coupling.coupling_along_x(fields, path.z_m, v, n_periods=n_periods,
+                                                spot=spot)
     else:
         g = layout.grid
         # the Floquet planes must sit on Ex rows; move them outward onto the nearest row
@@ -207,8 +227,16 @@ def run_layers(spec: Spec) -> PathCoupling:
         length = path.length_m
         if length is None:
             raise ValueError("a path along x needs an interaction length")
-        value, _ = layers.coupling_parallel(sol, path.z_m, v, length=length)
-        integral = complex(np.asarray(value))
+        radius = laser_footprint_radius(spec, layout.angle_rad)
+        if radius is None:
+            value, _ = layers.coupling_parallel(sol, path.z_m, v, length=length)
+            integral = complex(np.asarray(value))
+        else:
+            from solvers.coupling import gaussian_envelope_integral
+
+            ex, delta = layers.coupling_parallel(sol, path.z_m, v)
+            integral = complex(np.asarray(ex)) * gaussian_envelope_integral(
+                complex(np.asarray(delta)), length, radius)
     return PathCoupling(integral_V=integral, max_field_in_material=_stack_e_max(stack, sol),
                         resolution_m=None, stack=sol, layout=layout)
 

@@ -305,7 +305,9 @@ def place_eps(eps_x: jnp.ndarray, eps_z: jnp.ndarray, eps_cells: jnp.ndarray,
     components the face between the two cells is parallel to the field component,
     the case where the arithmetic mean is the exact layered average; Farjadpour et
     al., Opt. Lett. 31, 2972, 2006).  On a face of the region's border the outer side
-    is the family's own value at that face.  Faces strictly inside are fully replaced.
+    is the family's value one face further out (the cell just outside the region; the
+    border face itself may already average across a family interface lying on it).
+    Faces strictly inside are fully replaced.
     Linear in ``eps_cells``; JAX-traceable.
     """
     i0, i1, k0, k1 = cells.i0, cells.i1, cells.k0, cells.k1
@@ -317,17 +319,21 @@ def place_eps(eps_x: jnp.ndarray, eps_z: jnp.ndarray, eps_cells: jnp.ndarray,
     # Ex: faces k0 .. k1 (k1 is the bottom face of the cell above the region)
     inner = 0.5 * (e[:, :-1] + e[:, 1:])
     ex = ex.at[i0:i1, k0 + 1:k1].set(inner)
-    ex = ex.at[i0:i1, k0].set(0.5 * (e[:, 0] + ex[i0:i1, k0]))
+    below = ex[i0:i1, k0 - 1] if k0 >= 1 else ex[i0:i1, k0]
+    above = ex[i0:i1, k1 + 1] if k1 + 1 < nz else ex[i0:i1, min(k1, nz - 1)]
+    ex = ex.at[i0:i1, k0].set(0.5 * (e[:, 0] + below))
     if k1 < nz:
-        ex = ex.at[i0:i1, k1].set(0.5 * (e[:, -1] + ex[i0:i1, k1]))
+        ex = ex.at[i0:i1, k1].set(0.5 * (e[:, -1] + above))
     # Ez: faces i0 .. i1
     if cells.periodic_x:
         ez = ez.at[:, k0:k1].set(0.5 * (e + jnp.roll(e, 1, axis=0)))
     else:
         ez = ez.at[i0 + 1:i1, k0:k1].set(0.5 * (e[:-1] + e[1:]))
-        ez = ez.at[i0, k0:k1].set(0.5 * (e[0] + ez[i0, k0:k1]))
+        left = ez[i0 - 1, k0:k1] if i0 >= 1 else ez[i0, k0:k1]
+        right = ez[i1 + 1, k0:k1] if i1 + 1 < nx else ez[min(i1, nx - 1), k0:k1]
+        ez = ez.at[i0, k0:k1].set(0.5 * (e[0] + left))
         if i1 < nx:
-            ez = ez.at[i1, k0:k1].set(0.5 * (e[-1] + ez[i1, k0:k1]))
+            ez = ez.at[i1, k0:k1].set(0.5 * (e[-1] + right))
     return ex, ez
 
 

@@ -526,6 +526,30 @@ def coupling_along_z(fields, x, z1, z2, eps_below, eps_above, velocity, spot=Non
                              dispersion=dispersion)
 
 
+def gaussian_envelope_integral(delta, length, radius):
+    """``int_0^L exp(i delta s) exp(-(s - L/2)^2 / radius^2) ds`` (m), closed form.
+
+    The laser spot centred on a path of length L (field envelope with 1/e^2
+    intensity radius ``radius`` along the path), under detuning ``delta``
+    (1/m).  Completing the square,
+    ``= exp(i delta L/2) (sqrt(pi) r / 2) exp(-delta^2 r^2/4)
+    [erf(L/(2r) - i delta r/2) + erf(L/(2r) + i delta r/2)]``
+    (M. Abramowitz & I. A. Stegun, Handbook of Mathematical Functions, 7.4.32).
+    Evaluated through the Faddeeva function, ``erfc(z) = exp(-z^2) w(i z)``, so that
+    wide spots (where exp(-delta^2 r^2/4) underflows and erf overflows) stay finite.
+    Numpy/scipy only (not traced).  Tends to :func:`solvers.layers.detuning_integral`
+    as ``radius -> inf``.
+    """
+    from scipy.special import wofz
+
+    d, L, r = complex(delta), float(length), float(radius)
+    a, b = L / (2 * r), 0.5j * d * r
+    # exp(b^2) erf(a +- b) = exp(b^2) - exp(-a^2 -+ 2 a b) w(i (a +- b))
+    plus = np.exp(b * b) - np.exp(-a * a - 2 * a * b) * wofz(1j * (a + b))
+    minus = np.exp(b * b) - np.exp(-a * a + 2 * a * b) * wofz(1j * (a - b))
+    return np.exp(0.5j * d * L) * (np.sqrt(np.pi) * r / 2) * (plus + minus)
+
+
 # --------------------------------------------------------------------------- figures of merit
 def beta_from_integral(integral, omega):
     """PINEM coupling constant ``beta_c = e I / (2 hbar w)`` (dimensionless, complex).

@@ -419,3 +419,22 @@ def test_grad_through_jax_path_matches_numpy_finite_differences():
     i_np, _ = C.coupling_along_x(f, z, V30, n_periods=4)
     # d/dt |(1+t) I|^2 at t = 0 is 2 |I|^2 (closed form)
     assert abs(float(jax.grad(obj_x)(0.0)) - 2 * abs(i_np) ** 2) < 1e-10 * abs(i_np) ** 2
+
+
+def test_gaussian_envelope_integral_matches_quadrature():
+    # closed form (Abramowitz & Stegun 7.4.32, completing the square) against
+    # scipy.integrate.quad of the definition, detuned and phase matched
+    from scipy import integrate
+
+    length, radius = 10e-6, 3e-6
+    for delta in (0.0, 2.0e5, 1.3e6):
+        def part(s, f):
+            return f(np.exp(1j * delta * s - (s - length / 2) ** 2 / radius**2))
+        re = integrate.quad(part, 0, length, args=(np.real,), limit=200)[0]
+        im = integrate.quad(part, 0, length, args=(np.imag,), limit=200)[0]
+        got = C.gaussian_envelope_integral(delta, length, radius)
+        assert abs(got - complex(re, im)) < 1e-9 * length
+    # a very wide spot tends to the plain detuning integral
+    wide = C.gaussian_envelope_integral(2.0e5, length, 1e3)
+    plain = (np.exp(1j * 2.0e5 * length) - 1) / (1j * 2.0e5)
+    assert abs(wide - plain) < 1e-6 * abs(plain)
