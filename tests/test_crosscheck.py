@@ -19,6 +19,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from conftest import skip_or_fail
 
 from designer.crosscheck import CrosscheckError, crosscheck, fdtd_problem, physical_region
 from designer.spec import parse_spec
@@ -32,7 +33,7 @@ def _meep_or_skip():
     try:
         meep_python()
     except MeepUnavailableError as exc:
-        pytest.skip(f"Meep not available: {exc}")
+        skip_or_fail(f"Meep not available: {exc}")
 
 
 def film_raw(n=2.0, angle_deg=30.0, side="below", resolution_nm=9.5):

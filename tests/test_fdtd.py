@@ -14,6 +14,7 @@ import sys
 
 import numpy as np
 import pytest
+from conftest import skip_or_fail
 from scipy import constants
 
 from solvers.fdtd import (
@@ -34,7 +35,7 @@ def _meep_or_skip() -> str:
     try:
         return meep_python()
     except MeepUnavailableError as exc:
-        pytest.skip(f"Meep not available: {exc}")
+        skip_or_fail(f"Meep not available: {exc}")
 
 
 def layer_fields_tm(z, x, eps, d_layers, k0, kx, h_inc):

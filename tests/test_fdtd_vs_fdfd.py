@@ -10,6 +10,7 @@ import importlib.util
 from pathlib import Path
 
 import pytest
+from conftest import skip_or_fail
 
 from solvers.fdtd import MeepUnavailableError, meep_python
 
@@ -21,7 +22,7 @@ def test_grating_fields_and_coupling_agree_between_fdfd_and_meep():
     try:
         meep_python()
     except MeepUnavailableError as exc:
-        pytest.skip(f"Meep not available: {exc}")
+        skip_or_fail(f"Meep not available: {exc}")
     spec = importlib.util.spec_from_file_location("fdtd_vs_fdfd", STUDY)
     study = importlib.util.module_from_spec(spec)
     spec.loader.exec_module(study)

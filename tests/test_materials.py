@@ -9,6 +9,7 @@ import warnings
 
 import numpy as np
 import pytest
+from conftest import skip_or_fail
 from scipy import constants as const
 
 from designer import materials as mat
@@ -169,7 +170,7 @@ def test_against_meep_materials_library():
             ref = json.loads(lines[-1][len("RESULT"):])
             break
     if ref is None:
-        pytest.skip("Meep not available")
+        skip_or_fail("Meep not available")
     for ours, theirs in (("gold", "Au"), ("silver", "Ag"), ("fused_silica", "fused_quartz")):
         got = resolve_material(ours).eps(np.array(wavelengths_um) * 1e-6, warn=False)
         want = np.array([complex(re, im) for re, im in ref[theirs]])

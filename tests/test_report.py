@@ -18,6 +18,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from conftest import skip_or_fail
 from test_compare import film, write_specs
 from test_sweep import closed_form_evaluator, film_beta_c
 
@@ -88,7 +89,7 @@ def _browser() -> str:
     lines = proc.stdout.strip().splitlines()
     path = lines[-1] if lines else ""
     if not path or not shutil.which(path):
-        pytest.skip("no Chromium available: " + proc.stderr.strip()[-300:])
+        skip_or_fail("no Chromium available: " + proc.stderr.strip()[-300:])
     return path
 
 
