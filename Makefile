@@ -34,7 +34,7 @@ test-fast: env
 	$(PY) -m pytest -m "not slow" $(PYTEST_ARGS)
 
 demo: env meep
-	$(VENV)/bin/velomatch demo
+	$(VENV)/bin/velomatch demo --overwrite
 
 lint: env
 	$(VENV)/bin/ruff check .
