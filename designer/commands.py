@@ -160,6 +160,12 @@ def spectrum_of(ev) -> dict:
         d = x[:, None] + shifts[None, :] - ev.run.layout.path.x_m
         weights = np.exp(-4 * np.log(2) * d**2 / spot**2).sum(axis=1)
         samples = betas
+    elif spot and ev.run.spot_z_m is not None:
+        from designer.evaluate import spot_weights
+
+        samples = np.abs(np.asarray(beta_from_integral(ev.run.spot_z_integral_V * e0,
+                                                       ev.omega)))
+        weights = spot_weights(ev.run.spot_z_m, ev.run.layout.path.z_m, spot)
     tau_l, tau_e = spec.laser.duration_s, spec.spectrum.electron_pulse_s
     if tau_l is None or tau_e is None:
         tau_l = tau_e = None

@@ -54,6 +54,11 @@ class PathCoupling:
     layout: Any = None
     map_x_m: np.ndarray | None = None  # open paths: lateral positions across the cell
     map_integral_V: np.ndarray | None = None
+    map_z_m: np.ndarray | None = None  # paths along x: heights in the clear vacuum gap
+    map_z_integral_V: np.ndarray | None = None
+    spot_z_m: np.ndarray | None = None  # paths along x: heights across the electron spot
+    spot_z_integral_V: np.ndarray | None = None
+    spot_fraction: float | None = None  # share of the spot's current in the clear gap
 
 
 @dataclass(frozen=True)
@@ -176,7 +181,7 @@ def run_fdfd(spec: Spec, resolution_m: float, *, force: bool = False,
                    force=force)
     v = spec.beam.velocity_m_per_s
     path = layout.path
-    map_x = map_i = None
+    map_x = map_i = map_z = map_zi = spot_z = spot_zi = spot_fraction = None
     if path.direction == "x":
         n_periods = 1
         if path.length_m is not None and layout.period_m:
@@ -188,6 +193,18 @@ def run_fdfd(spec: Spec, resolution_m: float, *, force: bool = False,
             spot = (g.x0 + 0.5 * g.dx + 0.5 * n_periods * layout.period_m, radius)
         integral, _ = coupling.coupling_along_x(fields, path.z_m, v, n_periods=n_periods,
                                                 spot=spot)
+        if with_map:
+            def along(z):
+                return complex(coupling.coupling_along_x(fields, z, v, n_periods=n_periods,
+                                                         spot=spot)[0])
+            gap = clear_gap(layout)
+            if gap is not None:
+                map_z = np.linspace(gap[0], gap[1], 48)
+                map_zi = np.array([along(z) for z in map_z])
+                if spec.path.electron_spot_m:
+                    spot_z, spot_fraction = spot_heights(path.z_m, spec.path.electron_spot_m,
+                                                         gap)
+                    spot_zi = np.array([along(z) for z in spot_z])
     else:
         g = layout.grid
         # the Floquet planes must sit on Ex rows; move them outward onto the nearest row
@@ -204,7 +221,54 @@ def run_fdfd(spec: Spec, resolution_m: float, *, force: bool = False,
     e_max = float(fields.max_field_in(mask)) if mask.any() else None
     return PathCoupling(integral_V=complex(integral), max_field_in_material=e_max,
                         resolution_m=layout.grid.dx, fields=fields, layout=layout,
-                        map_x_m=map_x, map_integral_V=map_i)
+                        map_x_m=map_x, map_integral_V=map_i, map_z_m=map_z,
+                        map_z_integral_V=map_zi, spot_z_m=spot_z, spot_z_integral_V=spot_zi,
+                        spot_fraction=spot_fraction)
+
+
+def clear_gap(layout) -> tuple[float, float] | None:
+    """(lowest, highest) height of the vacuum gap around an x-path, or None.
+
+    An Ex row ``z0 + k dz`` is clear when the cells on both sides of it hold no
+    material anywhere along the period and it lies outside the PML; the contiguous
+    clear run containing the path's row is the gap.  Electrons outside it would strike
+    the structure (or leave the simulated region).
+    """
+    g = layout.grid
+    mask = np.asarray(layout.material_mask, dtype=bool)
+    n = layout.pml_cells_z
+    row_has = mask.any(axis=0)
+    k_path = int(round((layout.path.z_m - g.z0) / g.dz))
+    clear = np.zeros(g.nz, dtype=bool)
+    clear[n + 1:g.nz - n] = ~(row_has[n:g.nz - n - 1] | row_has[n + 1:g.nz - n])
+    if not (0 <= k_path < g.nz) or not clear[k_path]:
+        return None
+    lo = hi = k_path
+    while lo - 1 >= 0 and clear[lo - 1]:
+        lo -= 1
+    while hi + 1 < g.nz and clear[hi + 1]:
+        hi += 1
+    return g.z0 + lo * g.dz, g.z0 + hi * g.dz
+
+
+def spot_heights(z_centre: float, fwhm: float, gap: tuple[float, float], n: int = 41):
+    """Heights sampling a Gaussian electron spot (current-density FWHM ``fwhm``) to
+    ±3σ, clipped to the clear ``gap``; and the share of the spot's current inside the
+    gap (the rest would strike the structure).  Returns ``(z, fraction)``."""
+    from scipy.special import erf
+
+    sigma = fwhm / (2.0 * math.sqrt(2.0 * math.log(2.0)))
+    lo, hi = max(gap[0], z_centre - 3 * sigma), min(gap[1], z_centre + 3 * sigma)
+    root2 = sigma * math.sqrt(2.0)
+    fraction = 0.5 * (erf((gap[1] - z_centre) / root2) - erf((gap[0] - z_centre) / root2))
+    return np.linspace(lo, hi, n), float(fraction)
+
+
+def spot_weights(z: np.ndarray, z_centre: float, fwhm: float) -> np.ndarray:
+    """Normalized Gaussian weights of the electron current at heights ``z`` (uniform)."""
+    sigma = fwhm / (2.0 * math.sqrt(2.0 * math.log(2.0)))
+    w = np.exp(-0.5 * ((np.asarray(z) - z_centre) / sigma) ** 2)
+    return w / w.sum()
 
 
 # -- the exact layer-stack run -------------------------------------------------------
@@ -221,6 +285,7 @@ def run_layers(spec: Spec) -> PathCoupling:
                                   omega, layout.angle_rad, incidence=layout.from_side)
     v = spec.beam.velocity_m_per_s
     path = layout.path
+    map_z = map_zi = spot_z = spot_zi = spot_fraction = None
     if path.direction == "z":
         integral = complex(np.asarray(layers.coupling_normal(sol, path.x_m, v)))
     else:
@@ -229,16 +294,31 @@ def run_layers(spec: Spec) -> PathCoupling:
             raise ValueError("a path along x needs an interaction length")
         radius = laser_footprint_radius(spec, layout.angle_rad)
         if radius is None:
-            value, _ = layers.coupling_parallel(sol, path.z_m, v, length=length)
-            integral = complex(np.asarray(value))
+            factor = complex(np.asarray(layers.detuning_integral(
+                sol.kx - sol.omega / v, length)))
         else:
             from solvers.coupling import gaussian_envelope_integral
 
-            ex, delta = layers.coupling_parallel(sol, path.z_m, v)
-            integral = complex(np.asarray(ex)) * gaussian_envelope_integral(
-                complex(np.asarray(delta)), length, radius)
+            factor = gaussian_envelope_integral(complex(np.asarray(sol.kx - sol.omega / v)),
+                                                length, radius)
+        ex, _ = layers.coupling_parallel(sol, path.z_m, v)
+        integral = complex(np.asarray(ex)) * factor
+        top = float(np.asarray(stack.z_interfaces)[-1])
+        decay = 1.0 / max(float(np.imag(np.asarray(sol.kz)[-1])), 1e-30)
+        gap = (top, top + 4.0 * min(decay, 10 * spec.laser.wavelength_m))
+        map_z = np.linspace(gap[0], gap[1], 48)
+
+        def along(z):
+            return np.asarray(layers.stack_fields(sol, 0.0, z)[0]) * factor
+        map_zi = along(map_z)
+        if spec.path.electron_spot_m:
+            spot_z, spot_fraction = spot_heights(path.z_m, spec.path.electron_spot_m,
+                                                 (top, math.inf))
+            spot_zi = along(spot_z)
     return PathCoupling(integral_V=integral, max_field_in_material=_stack_e_max(stack, sol),
-                        resolution_m=None, stack=sol, layout=layout)
+                        resolution_m=None, stack=sol, layout=layout, map_z_m=map_z,
+                        map_z_integral_V=map_zi, spot_z_m=spot_z, spot_z_integral_V=spot_zi,
+                        spot_fraction=spot_fraction)
 
 
 def _stack_e_max(stack, sol) -> float | None:
@@ -343,6 +423,17 @@ def coupling_figures(ev: Evaluation) -> dict:
         "classical_max_energy_gain_eV": abs(integral),
     }
     run = ev.run
+    if run.map_z_m is not None:
+        betas = np.abs(np.asarray(beta_from_integral(run.map_z_integral_V * e0, ev.omega)))
+        out["height_map"] = {"z_m": run.map_z_m, "beta_c": betas,
+                             "path_z_m": run.layout.path.z_m}
+    if run.spot_z_m is not None:
+        spot = ev.spec.path.electron_spot_m
+        betas = np.abs(np.asarray(beta_from_integral(run.spot_z_integral_V * e0, ev.omega)))
+        w = spot_weights(run.spot_z_m, run.layout.path.z_m, spot)
+        out["spot_average"] = {"fwhm_m": spot, "mean_beta_c": float(np.sum(w * betas)),
+                               "rms_beta_c": math.sqrt(float(np.sum(w * betas**2))),
+                               "fraction_in_clear_gap": run.spot_fraction}
     if run.map_x_m is not None:
         betas = np.abs(np.asarray(beta_from_integral(run.map_integral_V * e0, ev.omega)))
         out["map"] = {"x_m": run.map_x_m, "beta_c": betas}

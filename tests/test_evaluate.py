@@ -171,3 +171,57 @@ def test_laser_spot_footprint_reduces_prism_coupling():
     r = 4e-6 / math.cos(lit.angle_rad)
     ratio = math.sqrt(math.pi) * r * erf(10e-6 / (2 * r)) / 10e-6
     assert abs(lit.run.integral_V) == pytest.approx(ratio * abs(plain.run.integral_V), rel=1e-9)
+
+
+def test_electron_spot_average_above_a_prism():
+    # Above a totally reflecting surface |beta_c(z)| = |beta_c(z0)| exp(-kappa (z - z0))
+    # (evanescent decay, kappa = omega / (c beta gamma); REFERENCES.md). A Gaussian
+    # electron spot of standard deviation sigma across the height then sees
+    # <|beta_c|> = |beta_c(z0)| exp(kappa^2 sigma^2 / 2) (the Gaussian moment-generating
+    # function; common practice, no source), up to the +-3 sigma truncation (< 1e-3).
+    from designer.evaluate import coupling_figures
+
+    kv, lam, fwhm = 200.0, 800e-9, 60e-9
+    raw = {"beam": {"voltage_kV": kv},
+           "laser": {"wavelength_nm": lam * 1e9},
+           "sample": {"family": "prism", "material": {"n": 2.0}},
+           "path": {"offset_nm": 200.0, "length_um": 10.0, "electron_spot_nm": fwhm * 1e9}}
+    ev = evaluate(parse_spec(raw))
+    fig = coupling_figures(ev)
+    gamma = 1 + kv * 1e3 * sc.e / (sc.m_e * sc.c**2)
+    beta = math.sqrt(1 - 1 / gamma**2)
+    kappa = 2 * math.pi / (beta * gamma * lam)
+    sigma = fwhm / (2 * math.sqrt(2 * math.log(2)))
+    expected = fig["beta_c"] * math.exp((kappa * sigma) ** 2 / 2)
+    assert fig["spot_average"]["mean_beta_c"] == pytest.approx(expected, rel=1e-3)
+    assert fig["spot_average"]["fraction_in_clear_gap"] == pytest.approx(1.0, abs=1e-6)
+    # the height map decays with the closed-form constant
+    z = np.asarray(fig["height_map"]["z_m"])
+    b = np.asarray(fig["height_map"]["beta_c"])
+    slope = np.polyfit(z, np.log(b), 1)[0]
+    assert -slope == pytest.approx(kappa, rel=1e-6)
+
+
+def test_grating_spot_clipped_by_the_teeth():
+    # A spot centred 10 nm above the tooth tops with FWHM 40 nm: the share of the
+    # current above the teeth is Phi(10 nm / sigma) for a Gaussian (common practice, no
+    # source), counting from where the clear gap starts: the first grid row whose
+    # neighbouring cells hold no material, within two rows of the tooth tops.
+    from scipy.stats import norm
+
+    from designer.evaluate import coupling_figures
+
+    raw = {"beam": {"voltage_kV": 30.0},
+           "laser": {"wavelength_nm": 800.0},
+           "sample": {"family": "grating", "material": {"n": 1.45}, "duty_cycle": 0.5,
+                      "tooth_height_nm": 200.0},
+           "path": {"offset_nm": 10.0, "length_um": 5.0, "electron_spot_nm": 40.0},
+           "solver": {"resolution_nm": 10.0, "refine": False}}
+    ev = evaluate(parse_spec(raw))
+    fig = coupling_figures(ev)
+    dz = ev.run.layout.grid.dz
+    z0 = fig["height_map"]["z_m"][0]
+    assert 200e-9 <= z0 <= 200e-9 + 2 * dz + 1e-12
+    sigma = 40e-9 / (2 * math.sqrt(2 * math.log(2)))
+    expected = norm.cdf((10e-9 - (z0 - 200e-9)) / sigma)
+    assert fig["spot_average"]["fraction_in_clear_gap"] == pytest.approx(expected, rel=1e-9)
