@@ -61,6 +61,16 @@ class Pml:
         return self.cells_x == 0
 
 
+def _check_launch(side: str, angle_rad: float, eps_incidence: complex) -> None:
+    """The checks every source shares: side, angle and incidence medium."""
+    if side not in _SIDES:
+        raise ValueError(f"side must be one of {_SIDES}, got {side!r}")
+    if not abs(angle_rad) < math.pi / 2:
+        raise ValueError(f"angle must be within (-pi/2, pi/2), got {angle_rad}")
+    if not np.isfinite(eps_incidence) or np.real(eps_incidence) <= 0:
+        raise ValueError(f"incidence medium must have Re(eps) > 0, got {eps_incidence}")
+
+
 @dataclass(frozen=True)
 class PlaneWave:
     """Plane wave of known peak amplitude, launched on a line (total-field/scattered-field).
@@ -85,14 +95,7 @@ class PlaneWave:
     z_source: float | None = None
 
     def __post_init__(self):
-        if self.side not in _SIDES:
-            raise ValueError(f"side must be one of {_SIDES}, got {self.side!r}")
-        if not abs(self.angle_rad) < math.pi / 2:
-            raise ValueError(f"angle must be within (-pi/2, pi/2), got {self.angle_rad}")
-        if not np.isfinite(self.eps_incidence) or np.real(self.eps_incidence) <= 0:
-            raise ValueError(
-                f"incidence medium must have Re(eps) > 0, got {self.eps_incidence}"
-            )
+        _check_launch(self.side, self.angle_rad, self.eps_incidence)
 
     @property
     def n_incidence(self) -> complex:
@@ -124,16 +127,9 @@ class GaussianBeam:
     z_source: float | None = None
 
     def __post_init__(self):
-        if self.side not in _SIDES:
-            raise ValueError(f"side must be one of {_SIDES}, got {self.side!r}")
+        _check_launch(self.side, self.angle_rad, self.eps_incidence)
         if not self.waist_m > 0:
             raise ValueError(f"waist must be positive, got {self.waist_m}")
-        if not abs(self.angle_rad) < math.pi / 2:
-            raise ValueError(f"angle must be within (-pi/2, pi/2), got {self.angle_rad}")
-        if not np.isfinite(self.eps_incidence) or np.real(self.eps_incidence) <= 0:
-            raise ValueError(
-                f"incidence medium must have Re(eps) > 0, got {self.eps_incidence}"
-            )
 
     @property
     def n_incidence(self) -> complex:
