@@ -362,11 +362,11 @@ def evaluate(spec: Spec, *, resolution_m: float | None = None, refine: bool | No
         solver = "layers"
     else:
         h = resolution_m or spec.solver.resolution_m or default_resolution(spec)
-        say(f"FDFD solve at {h * 1e9:.3g} nm")
+        say(f"FDFD solve, requested step {h * 1e9:.3g} nm (rounded to whole cells per period)")
         run = run_fdfd(spec, h, force=spec.solver.force)
         rel_error = None
         if refine:
-            say(f"FDFD solve at {1.5 * h * 1e9:.3g} nm (error estimate)")
+            say(f"FDFD solve, requested step {1.5 * h * 1e9:.3g} nm (error estimate)")
             coarse = run_fdfd(spec, 1.5 * h, force=True, with_map=False)
             ratio = coarse.resolution_m / run.resolution_m
             if abs(run.integral_V) > 0:
