@@ -139,6 +139,50 @@ def prepare_study_dir(path: str | Path, *, overwrite: bool = False) -> Path:
     return out
 
 
+def study_main(argv, *, description: str, default_out: Path, quick_help: str, run,
+               closing) -> dict:
+    """The shape every study script shares.
+
+    Parse ``--quick``, ``--out`` and ``--overwrite``; prepare the output folder
+    (:func:`prepare_study_dir`); ``summary = run(out, quick)``; add the wall time and
+    write ``summary.json``; list everything written in the manifest (so a later
+    ``--overwrite`` may replace it); ``closing(out, summary)``; print the safety note.
+    Returns the summary.
+    """
+    import argparse
+
+    from designer.cli import SAFETY_NOTE
+
+    p = argparse.ArgumentParser(description=description)
+    p.add_argument("--quick", action="store_true", help=quick_help)
+    p.add_argument("--out", default=str(default_out), help="output folder")
+    p.add_argument("--overwrite", action="store_true", help="replace an earlier run in --out")
+    args = p.parse_args(argv)
+    t0 = time.monotonic()
+    out = prepare_study_dir(args.out, overwrite=args.overwrite)
+    try:
+        summary = run(out, args.quick)
+        summary["wall_s"] = time.monotonic() - t0
+        vio.write_json(out / "summary.json", summary)
+    finally:
+        write_manifest(out)
+    closing(out, summary)
+    print(SAFETY_NOTE)
+    return summary
+
+
+def study_script(main) -> int:
+    """Run a study's ``main`` as a script: a user error is one line and exit code 2."""
+    from designer.errors import VelomatchError
+
+    try:
+        main()
+    except VelomatchError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return exc.exit_code
+    return 0
+
+
 def write_manifest(out: Path) -> list[str]:
     """List every file under ``out`` in the manifest (what ``--overwrite`` may replace)."""
     files = sorted(p.relative_to(out).as_posix() for p in out.rglob("*")

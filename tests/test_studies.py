@@ -211,3 +211,27 @@ def test_prism_study(tmp_path):
         assert xc["fdtd_vs_exact"] < 0.02 and xc["agree"]
     else:
         assert "skipped" in xc
+
+
+def test_study_rerun_with_overwrite_replaces_its_own_summary(tmp_path, capsys):
+    # summary.json is part of what a study wrote, so --overwrite may replace it, while a
+    # file the study did not write still blocks the folder (common practice, no source)
+    import json
+
+    from designer.demo import MANIFEST, study_main
+    from designer.errors import UsageError
+
+    def run(out, quick):
+        (out / "result.txt").write_text("x")
+        return {"quick": quick}
+
+    kw = dict(description="t", default_out=tmp_path / "o", quick_help="q", run=run,
+              closing=lambda out, summary: None)
+    first = study_main(["--out", str(tmp_path / "o")], **kw)
+    listed = json.loads((tmp_path / "o" / MANIFEST).read_text())["files"]
+    assert "summary.json" in listed and first["wall_s"] >= 0
+    study_main(["--out", str(tmp_path / "o"), "--overwrite"], **kw)
+    (tmp_path / "o" / "user.txt").write_text("keep me")
+    with pytest.raises(UsageError):
+        study_main(["--out", str(tmp_path / "o"), "--overwrite"], **kw)
+    assert (tmp_path / "o" / "user.txt").read_text() == "keep me"

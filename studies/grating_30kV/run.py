@@ -12,40 +12,28 @@ version of this study.
 
 from __future__ import annotations
 
-import argparse
 import sys
 from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE.parents[1]))
 
-from designer.cli import SAFETY_NOTE  # noqa: E402
 from designer.demo import (  # noqa: E402
-    prepare_study_dir,
     print_closing,
     run_grating_study,
-    write_manifest,
+    study_main,
+    study_script,
 )
 
 
 def main(argv: list[str] | None = None) -> dict:
-    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    p.add_argument("--quick", action="store_true", help="coarse grid, 15 iterations (~1 min)")
-    p.add_argument("--out", default=str(HERE / "output"), help="output folder")
-    p.add_argument("--overwrite", action="store_true", help="replace an earlier run in --out")
-    args = p.parse_args(argv)
-
     # the scenario: everything is in the spec file
     spec_text = (HERE / "grating.toml").read_text()
-    out = prepare_study_dir(args.out, overwrite=args.overwrite)
-    try:
-        summary = run_grating_study(spec_text, out, quick=args.quick)
-    finally:
-        write_manifest(out)
-    print_closing(out, summary)
-    print(SAFETY_NOTE)
-    return summary
+    return study_main(argv, description=__doc__.splitlines()[0], default_out=HERE / "output",
+                      quick_help="coarse grid, 15 iterations (~1 min)",
+                      run=lambda out, quick: run_grating_study(spec_text, out, quick=quick),
+                      closing=print_closing)
 
 
 if __name__ == "__main__":
-    main()
+    sys.exit(study_script(main))

@@ -11,11 +11,9 @@ cross-check of the winner against the exact layer-stack solution, and one HTML r
 
 from __future__ import annotations
 
-import argparse
 import dataclasses
 import json
 import sys
-import time
 from pathlib import Path
 
 import numpy as np
@@ -25,8 +23,7 @@ sys.path.insert(0, str(HERE.parents[1]))
 
 from designer import io as vio  # noqa: E402
 from designer import report as rp  # noqa: E402
-from designer.cli import SAFETY_NOTE  # noqa: E402
-from designer.demo import cli, prepare_study_dir, write_manifest  # noqa: E402
+from designer.demo import cli, study_main, study_script  # noqa: E402
 
 CANDIDATES = ("sin_50nm.toml", "sin_150nm.toml", "diamond_100nm.toml", "sapphire_80nm.toml")
 # (angle axis, wavelength axis) of the maps; the angle axis is symmetric about 0 so
@@ -66,23 +63,10 @@ def maps_figure(maps: dict):
 
 
 def main(argv: list[str] | None = None) -> dict:
-    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    p.add_argument("--quick", action="store_true", help="coarser maps (~1 min)")
-    p.add_argument("--out", default=str(HERE / "output"), help="output folder")
-    p.add_argument("--overwrite", action="store_true", help="replace an earlier run in --out")
-    args = p.parse_args(argv)
-    t0 = time.monotonic()
-    out = prepare_study_dir(args.out, overwrite=args.overwrite)
-    specs = [HERE / name for name in CANDIDATES]
-    try:
-        summary = _run(specs, out, args.quick)
-    finally:
-        write_manifest(out)
-    summary["wall_s"] = time.monotonic() - t0
-    vio.write_json(out / "summary.json", summary)
-    _print(out, summary)
-    print(SAFETY_NOTE)
-    return summary
+    return study_main(argv, description=__doc__.splitlines()[0], default_out=HERE / "output",
+                      quick_help="coarser maps (~1 min)",
+                      run=lambda out, quick: _run([HERE / n for n in CANDIDATES], out, quick),
+                      closing=_print)
 
 
 def _run(specs: list[Path], out: Path, quick: bool) -> dict:
@@ -181,4 +165,4 @@ def _print(out: Path, s: dict) -> None:
 
 
 if __name__ == "__main__":
-    main()
+    sys.exit(study_script(main))

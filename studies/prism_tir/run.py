@@ -11,11 +11,9 @@ laser and electron pulses, a Meep cross-check and one HTML report.
 
 from __future__ import annotations
 
-import argparse
 import json
 import math
 import sys
-import time
 from pathlib import Path
 
 import numpy as np
@@ -25,15 +23,14 @@ sys.path.insert(0, str(HERE.parents[1]))
 
 from designer import io as vio  # noqa: E402
 from designer import report as rp  # noqa: E402
-from designer.cli import SAFETY_NOTE  # noqa: E402
 from designer.demo import (  # noqa: E402
     cli,
     cli_json,
     decay_figure,
     fit_decay_length,
-    prepare_study_dir,
     spec_text,
-    write_manifest,
+    study_main,
+    study_script,
 )
 
 HEIGHTS = {False: "10:250:25", True: "10:250:7"}        # path.offset_nm
@@ -89,22 +86,10 @@ def length_figure(lengths_um, matched, detuned, closed_detuned, detuning_deg):
 
 
 def main(argv: list[str] | None = None) -> dict:
-    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    p.add_argument("--quick", action="store_true", help="coarser sweeps (~1 min)")
-    p.add_argument("--out", default=str(HERE / "output"), help="output folder")
-    p.add_argument("--overwrite", action="store_true", help="replace an earlier run in --out")
-    args = p.parse_args(argv)
-    t0 = time.monotonic()
-    out = prepare_study_dir(args.out, overwrite=args.overwrite)
-    try:
-        summary = _run(out, args.quick)
-    finally:
-        write_manifest(out)
-    summary["wall_s"] = time.monotonic() - t0
-    vio.write_json(out / "summary.json", summary)
-    _print(out, summary)
-    print(SAFETY_NOTE)
-    return summary
+    return study_main(argv, description=__doc__.splitlines()[0], default_out=HERE / "output",
+                      quick_help="coarser sweeps (~1 min)",
+                      run=_run,
+                      closing=_print)
 
 
 def _run(out: Path, quick: bool) -> dict:
@@ -266,4 +251,4 @@ def _print(out: Path, s: dict) -> None:
 
 
 if __name__ == "__main__":
-    main()
+    sys.exit(study_script(main))
