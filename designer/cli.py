@@ -80,7 +80,7 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("crosscheck", help="confirm the coupling with the FDTD solver (Meep)")
     p.add_argument("spec")
     _add_json(p)
-    p.add_argument("--resolution-nm", type=float, dest="resolution_nm",
+    p.add_argument("--grid-step-nm", type=float, dest="grid_step_nm",
                    help="FDTD grid step (default: chosen automatically)")
     p.add_argument("--max-wall-s", type=float, default=900.0, dest="max_wall_s",
                    help="give up after this many seconds (default 900)")

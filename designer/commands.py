@@ -85,8 +85,8 @@ def _coupling_text(result: dict) -> str:
     c = result["coupling"]
     lines = [f"sample: {result['sample']['family']}  "
              f"({result['provenance']['solver']}, "
-             + (f"step {result['provenance']['resolution_m'] * 1e9:.3g} nm)"
-                if result["provenance"]["resolution_m"] else "exact)"),
+             + (f"step {result['provenance']['grid_step_m'] * 1e9:.3g} nm)"
+                if result["provenance"]["grid_step_m"] else "exact)"),
              f"  laser angle               {result['laser']['angle_deg']:.3f} deg",
              f"  peak field (incidence)    {result['laser']['peak_field_V_per_m']:.4g} V/m",
              f"  coupling integral |I|     {math.hypot(*c['integral_V']):.4g} V",
@@ -196,7 +196,7 @@ def run_spectrum(args) -> int:
         spectrum.plot_spectrum(args.plot, result["energy_eV"], result["density_per_eV"], lines,
                                title=f"PINEM spectrum, |beta_c| = {result['beta_c_peak']:.3g}")
     result["provenance"] = provenance(spec.sha256, solver=ev.solver,
-                                      resolution_m=ev.run.resolution_m)
+                                      grid_step_m=ev.run.grid_step_m)
     strongest = sorted(zip(lines.orders, lines.probability), key=lambda t: -t[1])[:5]
     text = [f"PINEM spectrum: |beta_c| = {result['beta_c_peak']:.4g}, "
             f"photon energy {result['photon_energy_eV']:.4g} eV, "

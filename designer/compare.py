@@ -8,7 +8,7 @@ table (wavelength, amplitude, pulse duration, spot) and the grid step of the
 *first* spec.  The angle and side of incidence (``laser.angle_deg``, ``laser.from``)
 stay each candidate's own: they are part of a sample's design (a prism needs its
 phase-matched angle, a film its oblique one).  The grid step is the first spec's
-``solver.resolution_nm``; when it gives none, the step chosen automatically for the
+``solver.grid_step_nm``; when it gives none, the step chosen automatically for the
 first spec solved on a grid (or, if the first is an exact layer stack, the finest
 automatic step among the others).  The report says which.
 
@@ -90,7 +90,7 @@ def common_footing(specs: Sequence) -> tuple[list[dict], dict]:
 
     Returns ``(raws, footing)``; ``footing`` records what was taken from where.
     """
-    from designer.evaluate import choose_method, default_resolution
+    from designer.evaluate import choose_method, default_grid_step
     from designer.spec import parse_spec
 
     if not specs:
@@ -111,25 +111,25 @@ def common_footing(specs: Sequence) -> tuple[list[dict], dict]:
         raw["beam"] = copy.deepcopy(beam)
         raw["laser"] = new_laser
         raws.append(raw)
-    resolution_nm = first.raw.get("solver", {}).get("resolution_nm")
-    how = f"solver.resolution_nm of {first.source}"
-    if resolution_nm is None:
+    grid_step_nm = first.raw.get("solver", {}).get("grid_step_nm")
+    how = f"solver.grid_step_nm of {first.source}"
+    if grid_step_nm is None:
         parsed = [parse_spec(r, source=s.source, base_dir=s.base_dir) for r, s in zip(raws, specs)]
         grid = [p for p in parsed if choose_method(p) == "fdfd"]
         if grid and choose_method(parsed[0]) == "fdfd":
-            resolution_nm = default_resolution(parsed[0]) * 1e9
+            grid_step_nm = default_grid_step(parsed[0]) * 1e9
             how = f"automatic grid step of {first.source}"
         elif grid:
-            resolution_nm = min(default_resolution(p) for p in grid) * 1e9
+            grid_step_nm = min(default_grid_step(p) for p in grid) * 1e9
             how = "finest automatic grid step among the candidates solved on a grid"
         else:
             how = "none needed: every candidate is an exact layer stack"
-    if resolution_nm is not None:
-        resolution_nm = float(f"{resolution_nm:.6g}")
+    if grid_step_nm is not None:
+        grid_step_nm = float(f"{grid_step_nm:.6g}")
         for raw in raws:
-            raw.setdefault("solver", {})["resolution_nm"] = resolution_nm
+            raw.setdefault("solver", {})["grid_step_nm"] = grid_step_nm
     footing = {"from": first.source, "beam": beam, "laser": laser,
-               "resolution_nm": resolution_nm, "resolution_from": how,
+               "grid_step_nm": grid_step_nm, "grid_step_from": how,
                "kept_per_candidate": ["laser.angle_deg", "laser.from"],
                "changed": changed}
     return raws, footing
@@ -501,8 +501,8 @@ def compare_report(data: dict) -> rp.Report:
     beam = ", ".join(f"{k} = {v}" for k, v in f["beam"].items())
     footing_text = (f"All candidates are evaluated with the beam ({beam}) and laser ({laser}) "
                     f"of {f['from']}; grid step: "
-                    + (f"{f['resolution_nm']:g} nm ({f['resolution_from']})"
-                       if f["resolution_nm"] is not None else f["resolution_from"])
+                    + (f"{f['grid_step_nm']:g} nm ({f['grid_step_from']})"
+                       if f["grid_step_nm"] is not None else f["grid_step_from"])
                     + ". The angle and side of incidence stay each candidate's own.")
     summary = rp.Section("Summary", (
         rp.Facts(((f"best: {best['name']}", f"|β_c| = {headline(best)}"),), headline=True),

@@ -47,10 +47,10 @@ Figures (all for an incident peak field of 1 V/m)
     relative difference is at most the tolerance.
 
 Resolution
-    Default: the spec's ``solver.resolution_nm`` if given, else the FDFD default
-    (``designer.evaluate.default_resolution``, 60 cells per wavelength in the densest
+    Default: the spec's ``solver.grid_step_nm`` if given, else the FDFD default
+    (``designer.evaluate.default_grid_step``, 60 cells per wavelength in the densest
     material), so that for paths along x the FDFD figure is the one ``evaluate``
-    reports.  ``--resolution-nm`` overrides it for both solvers.  Meep's cost grows as
+    reports.  ``--grid-step-nm`` overrides it for both solvers.  Meep's cost grows as
     the inverse cube of the step in 2D; the wall-time guard stops the Meep worker.
 """
 
@@ -110,7 +110,7 @@ class Crosscheck:
     integral_fdtd_V: complex
     exact_V: complex | None
     omega: float
-    resolution_m: float
+    grid_step_m: float
     fdfd_wall_s: float
     fdtd_wall_s: float
     fdtd_converged: bool
@@ -154,12 +154,12 @@ def _rel(a: complex, b: complex) -> float:
 
 
 # ------------------------------------------------------------------ resolution
-def choose_resolution(spec) -> float:
-    """Grid step (m) for both solvers: the spec's ``solver.resolution_nm`` or the FDFD
-    default of ``designer.evaluate.default_resolution``."""
-    from designer.evaluate import default_resolution
+def choose_grid_step(spec) -> float:
+    """Grid step (m) for both solvers: the spec's ``solver.grid_step_nm`` or the FDFD
+    default of ``designer.evaluate.default_grid_step``."""
+    from designer.evaluate import default_grid_step
 
-    return float(spec.solver.resolution_m or default_resolution(spec))
+    return float(spec.solver.grid_step_m or default_grid_step(spec))
 
 
 # ------------------------------------------------------------------ the Meep problem
@@ -206,21 +206,21 @@ def fdtd_problem(spec, layout, polygons, bloch_kx: float, lines, *, steady_tol: 
             period_x_m=g.size_x, x_min_m=g.x0, pml_m=layout.pml_cells_z * g.dz,
             angle_rad=float(layout.angle_rad), eps_incidence=eps_inc.real,
             side=layout.from_side, bloch_kx=float(bloch_kx), polygons=polys,
-            eps_background=1.0, resolution_per_um=1e-6 / g.dx, lines=tuple(lines),
+            eps_background=1.0, cells_per_um=1e-6 / g.dx, lines=tuple(lines),
             steady_tol=steady_tol)
     except ValueError as exc:
         raise CrosscheckError(f"cannot build the Meep problem: {exc}") from None
 
 
 # ------------------------------------------------------------------ the comparison
-def crosscheck(spec, *, resolution_m: float | None = None, tolerance: float = DEFAULT_TOLERANCE,
+def crosscheck(spec, *, grid_step_m: float | None = None, tolerance: float = DEFAULT_TOLERANCE,
                max_wall_s: float = 900.0,
                progress: Callable[[str], None] | None = None) -> Crosscheck:
     """Solve the spec's sample with FDFD and with Meep and compare the couplings.
 
     Args:
       spec: a parsed ``designer.spec.Spec``.
-      resolution_m: grid step for both solvers (default :func:`choose_resolution`).
+      grid_step_m: grid step for both solvers (default :func:`choose_grid_step`).
       tolerance: agreement threshold on the relative difference of the coupling.
       max_wall_s: wall-time limit for the whole cross-check (FDFD + Meep).
       progress: called with short status lines.
@@ -239,7 +239,7 @@ def crosscheck(spec, *, resolution_m: float | None = None, tolerance: float = DE
         raise MeepNotInstalledError(str(exc)) from None
     if not tolerance > 0:
         raise CrosscheckError(f"--tolerance = {tolerance!r}: must be > 0")
-    h = float(resolution_m or choose_resolution(spec))
+    h = float(grid_step_m or choose_grid_step(spec))
     if not h > 0:
         raise CrosscheckError(f"resolution {h!r} m: must be > 0")
 
@@ -287,10 +287,10 @@ def crosscheck(spec, *, resolution_m: float | None = None, tolerance: float = DE
     except FdtdWorkerError as exc:
         msg = str(exc)
         if "wall-time" in msg:
-            msg += f"; or pass a coarser --resolution-nm (now {h * 1e9:.3g} nm)"
+            msg += f"; or pass a coarser --grid-step-nm (now {h * 1e9:.3g} nm)"
         raise CrosscheckError(msg) from None
-    if not math.isclose(td.resolution_m, g.dx, rel_tol=1e-9):
-        raise CrosscheckError(f"Meep used a step of {td.resolution_m} m instead of {g.dx} m")
+    if not math.isclose(td.grid_step_m, g.dx, rel_tol=1e-9):
+        raise CrosscheckError(f"Meep used a step of {td.grid_step_m} m instead of {g.dx} m")
     la, lb = td.lines
 
     exact = None
@@ -300,7 +300,7 @@ def crosscheck(spec, *, resolution_m: float | None = None, tolerance: float = DE
         exact = complex(run_layers(spec).integral_V)
 
     common = dict(family=spec.family, direction=path.direction, omega=omega,
-                  resolution_m=g.dx, fdfd_wall_s=fdfd_wall, fdtd_wall_s=td.wall_s,
+                  grid_step_m=g.dx, fdfd_wall_s=fdfd_wall, fdtd_wall_s=td.wall_s,
                   fdtd_converged=td.converged, fdtd_info=dict(td.info),
                   meep_version=td.meep_version, tolerance=float(tolerance), exact_V=exact)
     if path.direction == "x":
@@ -386,9 +386,9 @@ def crosscheck_json(result: Crosscheck, spec=None) -> dict:
 
     fdfd = block(result.integral_fdfd_V)
     fdtd = block(result.integral_fdtd_V)
-    fdfd["resolution_m"] = result.resolution_m
+    fdfd["grid_step_m"] = result.grid_step_m
     fdfd["wall_s"] = result.fdfd_wall_s
-    fdtd.update(resolution_m=result.resolution_m, wall_s=result.fdtd_wall_s,
+    fdtd.update(grid_step_m=result.grid_step_m, wall_s=result.fdtd_wall_s,
                 converged=result.fdtd_converged, meep_version=result.meep_version,
                 calibration=result.fdtd_info.get("calibration"),
                 periods_run=result.fdtd_info.get("periods_run"))
@@ -426,7 +426,7 @@ def crosscheck_json(result: Crosscheck, spec=None) -> dict:
     if result.exact_V is not None:
         out["exact_layer_stack"] = {"integral_V": result.exact_V}
     out["provenance"] = provenance(getattr(spec, "sha256", None), solver="fdfd+fdtd",
-                                   resolution_m=result.resolution_m,
+                                   grid_step_m=result.grid_step_m,
                                    meep_version=result.meep_version)
     return out
 
@@ -437,7 +437,7 @@ def crosscheck_text(result: Crosscheck) -> str:
 
     what = ("I over the path (one period x lattice sum)" if result.direction == "x"
             else "I along z (box + Floquet tails)")
-    lines = [f"crosscheck: {result.family}, step {result.resolution_m * 1e9:.3g} nm, "
+    lines = [f"crosscheck: {result.family}, step {result.grid_step_m * 1e9:.3g} nm, "
              f"E0 = 1 V/m; {what}",
              f"  FDFD        {fmt(result.integral_fdfd_V)}   ({result.fdfd_wall_s:.1f} s)",
              f"  FDTD (Meep) {fmt(result.integral_fdtd_V)}   ({result.fdtd_wall_s:.1f} s"
@@ -507,15 +507,15 @@ def crosscheck_command(args) -> int:
             sys.stderr.write(f"  {message}\n")
         sys.stderr.flush()
 
-    resolution = getattr(args, "resolution_nm", None)
+    resolution = getattr(args, "grid_step_nm", None)
     if resolution is not None and not resolution > 0:
-        raise CrosscheckError(f"--resolution-nm = {resolution!r}: must be > 0")
+        raise CrosscheckError(f"--grid-step-nm = {resolution!r}: must be > 0")
     max_wall = float(getattr(args, "max_wall_s", 900.0))
     if not max_wall > 0:
         raise CrosscheckError(f"--max-wall-s = {max_wall!r}: must be > 0")
     if not quiet:
         print(f"cross-checking {args.spec} (FDFD against Meep FDTD)", file=sys.stderr)
-    result = crosscheck(spec, resolution_m=None if resolution is None else resolution * 1e-9,
+    result = crosscheck(spec, grid_step_m=None if resolution is None else resolution * 1e-9,
                         tolerance=float(getattr(args, "tolerance", DEFAULT_TOLERANCE)),
                         max_wall_s=max_wall, progress=status)
     if getattr(args, "plot", None):

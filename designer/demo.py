@@ -69,7 +69,7 @@ substrate = true
 length_um = 20.0                 # about 30 periods
 
 [solver]
-resolution_nm = 20.0
+grid_step_nm = 20.0
 
 [fabrication]
 min_feature_nm = 80.0
@@ -91,7 +91,7 @@ line_length_um = 10.0
 """
 
 # --quick / demo: a coarser grid and fewer iterations (about a minute on 2 cores).
-QUICK_OVERRIDES = {"solver.resolution_nm": 40.0, "optimize.iterations": 15}
+QUICK_OVERRIDES = {"solver.grid_step_nm": 40.0, "optimize.iterations": 15}
 # Meep grid steps (nm) and agreement tolerances for the cross-check.  At 40 nm both
 # solvers carry O(h) discretization errors of a few per cent of their own
 # (the FDFD error estimate at 40 nm is ~10 %), so the quick check uses 5 %; the
@@ -362,7 +362,7 @@ def _grating_crosscheck(design, out: Path, quick: bool, say) -> dict:
 
     h_nm, tol = CROSSCHECK[quick]
     try:
-        result = crosscheck(design, resolution_m=h_nm * 1e-9, tolerance=tol,
+        result = crosscheck(design, grid_step_m=h_nm * 1e-9, tolerance=tol,
                             max_wall_s=300.0, progress=lambda m: None)
     except MeepNotInstalledError as exc:
         note = f"skipped: Meep is not available ({str(exc).splitlines()[0]})"
@@ -372,7 +372,7 @@ def _grating_crosscheck(design, out: Path, quick: bool, say) -> dict:
     vio.save_figure(crosscheck_figure(result), out / "crosscheck.png")
     say(f"  FDFD vs Meep: relative difference {result.relative_difference:.2%} "
         f"(tolerance {tol:.0%})")
-    return {"resolution_nm": h_nm, "tolerance": tol,
+    return {"grid_step_nm": h_nm, "tolerance": tol,
             "relative_difference": result.relative_difference, "agree": result.agree,
             "fdtd_converged": result.fdtd_converged}
 
@@ -402,7 +402,7 @@ def _grating_report(out: Path, s: dict, design_dir: Path) -> Path:
              s["variables"].items()]
     xc = s["crosscheck"]
     xc_text = (xc["skipped"] if "skipped" in xc else
-               f"{xc['relative_difference']:.2%} at {xc['resolution_nm']:g} nm "
+               f"{xc['relative_difference']:.2%} at {xc['grid_step_nm']:g} nm "
                f"(tolerance {xc['tolerance']:.0%}): "
                + ("agree" if xc["agree"] else "DISAGREE"))
     facts = (("phase-matched period (m β λ)", f"{s['period_nm']:.2f} nm"),

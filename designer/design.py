@@ -267,7 +267,7 @@ class DesignProblem:
     spec: Spec
     config: DesignConfig
     method: str                       # solver: "fdfd" | "layers"
-    resolution_m: float | None
+    grid_step_m: float | None
     models: tuple
     box: opt.Box
     x_start: np.ndarray
@@ -313,7 +313,7 @@ class DesignProblem:
         """What the start spec evaluates to: its density binarized at 0.5, unfiltered."""
         from designer import freeform as ff
 
-        return np.asarray(ff.project(self.rho_start, math.inf))
+        return np.asarray(ff.threshold_projection(self.rho_start, math.inf))
 
     def pattern_masks(self, u, pattern) -> tuple:
         x = self.x_of(u)[:self.n_keys]
@@ -388,14 +388,14 @@ def build_problem(spec: Spec, config: DesignConfig) -> DesignProblem:
 
     The loss takes ``aux = (masks, multipliers, scale)``: the loss scale is data, so
     one compilation serves the scale's own evaluation and the whole run."""
-    from designer.evaluate import choose_method, default_resolution
+    from designer.evaluate import choose_method, default_grid_step
     from designer.fabrication import constraint_function
 
     family = get_family(spec.family)
     method = choose_method(spec)
     h = None
     if method == "fdfd":
-        h = spec.solver.resolution_m or default_resolution(spec)
+        h = spec.solver.grid_step_m or default_grid_step(spec)
     keys = config.keys
     box = opt.make_box(config.bounds, keys)
     known = family.variables(spec.sample)
@@ -847,7 +847,7 @@ def freeform_summary(result: DesignResult) -> dict:
             "robust_length_m": (ff.robust_length_scale(c.radius_m, c.delta_eta)
                                 if c.radius_m else None),
             "final_beta": last_beta, "binarized_at": "beta = inf (nominal threshold 0.5)",
-            "grayness_at_final_beta": float(ff.grayness(ff.project(c.filtered(rho),
+            "grayness_at_final_beta": float(ff.grayness(ff.threshold_projection(c.filtered(rho),
                                                                    last_beta))),
             "solid_fraction": float(np.mean(pattern > 0.5)),
             "smallest_solid_m": solid, "smallest_void_m": void,
@@ -869,7 +869,7 @@ def write_outputs(result: DesignResult, out_dir: str | Path, *, status=None) -> 
         # the pattern lives on the design grid: pin the step so evaluate uses that grid
         vio.write_atomic(out / "density.npy", _npy_bytes(p.binarized(result.best_u)))
         raw.setdefault("solver", {})
-        raw["solver"].setdefault("resolution_nm", p.resolution_m * 1e9)
+        raw["solver"].setdefault("grid_step_nm", p.grid_step_m * 1e9)
     vio.write_atomic(out / "design.toml", dump_spec(raw))
     design_spec = load_spec(out / "design.toml")
     say("evaluating the optimized design")
@@ -878,9 +878,9 @@ def write_outputs(result: DesignResult, out_dir: str | Path, *, status=None) -> 
     vio.write_json(out / "evaluation.json", design_eval)
     vio.save_figure(evaluation_figure(ev), out / "design.png")
     if ev.solver == "fdfd":
-        fine = ev.run.resolution_m / p.config.refine_factor
+        fine = ev.run.grid_step_m / p.config.refine_factor
         say(f"re-evaluating at {fine * 1e9:.3g} nm")
-        refined = evaluation_json(evaluate(design_spec, resolution_m=fine, refine=True))
+        refined = evaluation_json(evaluate(design_spec, grid_step_m=fine, refine=True))
         refined["note"] = (f"step {fine:.4g} m = evaluation step / {p.config.refine_factor:g}; "
                            "relative_error_estimate from a second solve at 1.5x that step")
     else:
@@ -890,7 +890,7 @@ def write_outputs(result: DesignResult, out_dir: str | Path, *, status=None) -> 
     say("evaluating the start design")
     start_eval = evaluation_json(evaluate(spec, refine=False))
     data, text = comparison(result, start_eval, design_eval)
-    data["refined"] = {"resolution_m": refined["provenance"].get("resolution_m"),
+    data["refined"] = {"grid_step_m": refined["provenance"].get("grid_step_m"),
                        "beta_c_per_field_m_per_V":
                            refined["coupling"]["beta_c_per_field_m_per_V"],
                        "relative_error_estimate": refined["coupling"]["relative_error_estimate"]}
@@ -900,7 +900,7 @@ def write_outputs(result: DesignResult, out_dir: str | Path, *, status=None) -> 
                "method": p.config.method, "variables": list(p.config.keys),
                "scenarios": [m.scenario.label for m in p.models],
                "constraints": list(p.constraint_names), "solver": p.method,
-               "resolution_m": p.resolution_m, "start": result.start_record,
+               "grid_step_m": p.grid_step_m, "start": result.start_record,
                "best_start": result.best_start, "best": result.best_record,
                "starts": [{"index": st.index, "stopped": st.reason, "history": st.history}
                           for st in result.starts]}

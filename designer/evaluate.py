@@ -16,7 +16,7 @@ reported value is estimated as |I_h − I_1.5h| / (1.5^p − 1) / |I_h|
 (L. F. Richardson, Phil. Trans. R. Soc. A 210, 307, 1911).  The layer-stack solver is
 exact up to rounding; its estimate is 0.
 
-Largest field in material (DESIGN.md §4): at re-entrant corners of sharp-edged
+Largest field in material (README, Conventions): at re-entrant corners of sharp-edged
 dielectrics the field is singular, so the sampled maximum does not converge.  Real
 corners are rounded: cells closer to a polygon corner than the fabrication rules'
 ``corner_radius_nm`` are left out of the maximum.  The rule used is reported.
@@ -48,7 +48,7 @@ class PathCoupling:
 
     integral_V: complex                # I for E0 = 1 V/m
     max_field_in_material: float | None  # |E|max in material for E0 = 1 V/m
-    resolution_m: float | None
+    grid_step_m: float | None
     fields: Any = None                 # solvers.fdfd.Fields (FDFD runs)
     stack: Any = None                  # solvers.layers.StackSolution (layer runs)
     layout: Any = None
@@ -97,7 +97,7 @@ def choose_method(spec: Spec) -> str:
     return "layers" if layered else "fdfd"
 
 
-def default_resolution(spec: Spec, values: dict | None = None) -> float:
+def default_grid_step(spec: Spec, values: dict | None = None) -> float:
     """Grid step from the wavelength and the densest material (solvers.fdfd.spacing_for:
     DEFAULT_CELLS_PER_WAVELENGTH cells per wavelength there)."""
     from solvers.fdfd import spacing_for
@@ -167,14 +167,14 @@ def corner_exclusion_mask(layout, polygons, radius_m: float) -> np.ndarray:
     return keep
 
 
-def run_fdfd(spec: Spec, resolution_m: float, *, force: bool = False,
+def run_fdfd(spec: Spec, grid_step_m: float, *, force: bool = False,
              values: dict | None = None, with_map: bool = True) -> PathCoupling:
     """Solve the spec's sample once on the Yee grid and integrate along its path."""
     from solvers import coupling
     from solvers.fdfd import solve
 
     family = get_family(spec.family)
-    layout = family.layout(spec.sample, spec.context, resolution_m)
+    layout = family.layout(spec.sample, spec.context, grid_step_m)
     eps_x, eps_z = family.permittivity(spec.sample, layout, values)
     omega = angular_frequency(spec.laser.wavelength_m)
     fields = solve(fdfd_problem(layout, omega), np.asarray(eps_x), np.asarray(eps_z),
@@ -220,7 +220,7 @@ def run_fdfd(spec: Spec, resolution_m: float, *, force: bool = False,
     mask = np.asarray(layout.material_mask) & ~excluded
     e_max = float(fields.max_field_in(mask)) if mask.any() else None
     return PathCoupling(integral_V=complex(integral), max_field_in_material=e_max,
-                        resolution_m=layout.grid.dx, fields=fields, layout=layout,
+                        grid_step_m=layout.grid.dx, fields=fields, layout=layout,
                         map_x_m=map_x, map_integral_V=map_i, map_z_m=map_z,
                         map_z_integral_V=map_zi, spot_z_m=spot_z, spot_z_integral_V=spot_zi,
                         spot_fraction=spot_fraction)
@@ -316,7 +316,7 @@ def run_layers(spec: Spec) -> PathCoupling:
                                                  (top, math.inf))
             spot_zi = along(spot_z)
     return PathCoupling(integral_V=integral, max_field_in_material=_stack_e_max(stack, sol),
-                        resolution_m=None, stack=sol, layout=layout, map_z_m=map_z,
+                        grid_step_m=None, stack=sol, layout=layout, map_z_m=map_z,
                         map_z_integral_V=map_zi, spot_z_m=spot_z, spot_z_integral_V=spot_zi,
                         spot_fraction=spot_fraction)
 
@@ -346,7 +346,7 @@ def _stack_e_max(stack, sol) -> float | None:
 
 # -- the whole evaluation ------------------------------------------------------------
 
-def evaluate(spec: Spec, *, resolution_m: float | None = None, refine: bool | None = None,
+def evaluate(spec: Spec, *, grid_step_m: float | None = None, refine: bool | None = None,
              progress: Callable[[str], None] | None = None) -> Evaluation:
     """Coupling figures of the spec's sample (see the module docstring)."""
     say = progress or (lambda message: None)
@@ -361,14 +361,14 @@ def evaluate(spec: Spec, *, resolution_m: float | None = None, refine: bool | No
         rel_error = 0.0
         solver = "layers"
     else:
-        h = resolution_m or spec.solver.resolution_m or default_resolution(spec)
+        h = grid_step_m or spec.solver.grid_step_m or default_grid_step(spec)
         say(f"FDFD solve, requested step {h * 1e9:.3g} nm (rounded to whole cells per period)")
         run = run_fdfd(spec, h, force=spec.solver.force)
         rel_error = None
         if refine:
             say(f"FDFD solve, requested step {1.5 * h * 1e9:.3g} nm (error estimate)")
             coarse = run_fdfd(spec, 1.5 * h, force=True, with_map=False)
-            ratio = coarse.resolution_m / run.resolution_m
+            ratio = coarse.grid_step_m / run.grid_step_m
             if abs(run.integral_V) > 0:
                 rel_error = (abs(run.integral_V - coarse.integral_V) / (ratio - 1.0)
                              / abs(run.integral_V))
@@ -464,7 +464,7 @@ def evaluation_json(ev: Evaluation) -> dict:
         "sample": {"family": spec.family},
         "coupling": coupling_figures(ev),
         "provenance": provenance(spec.sha256, solver=ev.solver,
-                                 resolution_m=ev.run.resolution_m),
+                                 grid_step_m=ev.run.grid_step_m),
     }
 
 

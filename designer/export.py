@@ -226,11 +226,11 @@ def top_view(spec, settings: LayoutSettings) -> geo.TopView:
 def freeform_pattern(spec):
     """(layout, region cells, binarized solid pattern) of a spec's free-form region on
     the grid its evaluation uses."""
-    from designer.evaluate import default_resolution
+    from designer.evaluate import default_grid_step
     from designer.families import get_family, region
 
     family = get_family(spec.family)
-    h = spec.solver.resolution_m or default_resolution(spec)
+    h = spec.solver.grid_step_m or default_grid_step(spec)
     lay = family.layout(spec.sample, spec.context, h)
     cells = region.region_cells(spec.sample.freeform, lay)
     return lay, cells, np.asarray(family.freeform_density(spec.sample, lay)) > 0.5

@@ -14,7 +14,7 @@ The ``[fabrication]`` spec table describes what a cleanroom can make::
     write_field_um = 100.0         # lithography write field (export)      default 100 um
 
 Every key is optional; an absent table means "no rules" except the corner radius
-(10 nm, DESIGN.md section 4) and the write field.
+(10 nm, common practice, no source) and the write field.
 
 Three ways the rules reach a design:
 

@@ -1,12 +1,12 @@
 """Free-form density regions: filter, projection, robust designs, permittivity.
 
-A :class:`DesignRegion` is a rectangle of the (x, z) cross-section inside any sample
+A :class:`DensityPatch` is a rectangle of the (x, z) cross-section inside any sample
 family.  Its design pixels ARE the FDFD grid cells it covers (no second design grid:
 one density value per cell centre, so no interpolation error and an exact adjoint of
 the placement).  The density ``rho`` in [0, 1] goes through small pure functions that
 compose (each JAX-traceable, float64):
 
-    rho --conic_filter--> rho_tilde --project(beta, eta)--> rho_bar
+    rho --density_filter--> rho_tilde --threshold_projection(beta, eta)--> rho_bar
         --density_to_eps--> eps at cell centres --place_eps--> (eps_x, eps_z)
 
 and, for a minimum length scale, :func:`robust_triple` gives the eroded, nominal and
@@ -50,7 +50,7 @@ from solvers.grid import Grid  # noqa: E402
 # region
 # ---------------------------------------------------------------------------------
 @dataclass(frozen=True)
-class DesignRegion:
+class DensityPatch:
     """A free-form rectangle ``[x_min, x_max] x [z_min, z_max]`` (m) of two materials.
 
     ``eps_void`` where the density is 0, ``eps_solid`` where it is 1.
@@ -88,7 +88,7 @@ class RegionCells:
         return (self.i1 - self.i0, self.k1 - self.k0)
 
 
-def region_cells(region: DesignRegion, grid: Grid) -> RegionCells:
+def region_cells(region: DensityPatch, grid: Grid) -> RegionCells:
     """The grid cells whose centres lie inside the region.
 
     Raises ValueError if the region covers no cell or leaves the grid, or if
@@ -125,7 +125,7 @@ def conic_kernel(radius_m: float, dx: float, dz: float) -> np.ndarray:
     return w / w.max()
 
 
-def conic_filter(rho: jnp.ndarray, radius_m: float, dx: float, dz: float, *,
+def density_filter(rho: jnp.ndarray, radius_m: float, dx: float, dz: float, *,
                  periodic_x: bool = False) -> jnp.ndarray:
     """Density filter ``rho~_j = sum_i w_ij rho_i / sum_i w_ij`` with a cone kernel.
 
@@ -170,7 +170,7 @@ def _filter_norm(shape, w: np.ndarray, periodic_x: bool) -> np.ndarray:
 # ---------------------------------------------------------------------------------
 # projection and continuation
 # ---------------------------------------------------------------------------------
-def project(rho_tilde: jnp.ndarray, beta, eta=0.5) -> jnp.ndarray:
+def threshold_projection(rho_tilde: jnp.ndarray, beta, eta=0.5) -> jnp.ndarray:
     """Smoothed Heaviside threshold projection (Wang, Lazarov & Sigmund 2011, eq. 8)::
 
         rho_bar = (tanh(beta eta) + tanh(beta (rho~ - eta)))
@@ -220,7 +220,7 @@ def robust_triple(rho_tilde: jnp.ndarray, beta, delta_eta: float) -> jnp.ndarray
     features of the nominal design survive erosion and its gaps survive dilation,
     which imposes the minimum lengths of :func:`robust_length_scale`.
     """
-    return jnp.stack([project(rho_tilde, beta, eta) for eta in robust_thresholds(delta_eta)])
+    return jnp.stack([threshold_projection(rho_tilde, beta, eta) for eta in robust_thresholds(delta_eta)])
 
 
 def robust_length_scale(radius_m: float, delta_eta: float, *, kernel: str = "2d") -> float:
@@ -241,7 +241,7 @@ def robust_length_scale(radius_m: float, delta_eta: float, *, kernel: str = "2d"
 
     (``b = R`` at ``eta_e = 0.75``, the value commonly quoted -- from memory).
 
-    ``kernel="2d"`` (default, what :func:`conic_filter` applies): a straight bar sees
+    ``kernel="2d"`` (default, what :func:`density_filter` applies): a straight bar sees
     the 2D cone integrated along the bar, ``k(x) = (R h - x^2 ln((R + h)/|x|)) / (pi R^3
     / 3)`` with ``h = sqrt(R^2 - x^2)``; same argument, solved numerically.  About 6 %
     below the 1D value at ``d = 0.25``.

@@ -10,7 +10,7 @@ wavelength and angle, lateral etch bias) through the same physics chain as
     x --interfaces (affine in x)--> solvers.layers --> I, E_max   (planar stacks)
 
 All figures are per unit incident field (E0 = 1 V/m in the incidence medium, so
-each scales linearly with E0; DESIGN.md section 3-4):
+each scales linearly with E0; README, Conventions):
 
     coupling          |beta_c| / E0 = e |I| / (2 hbar omega E0)           [m/V]
     structure_factor  kappa = G / E0,  G = |I| / L                        [1]
@@ -18,7 +18,7 @@ each scales linearly with E0; DESIGN.md section 3-4):
 
 (``beta_c = e I / (2 hbar omega)``: F. J. Garcia de Abajo, A. Asenjo-Garcia,
 M. Kociak, Nano Lett. 10, 1859, 2010; G, kappa and the damage factor as defined in
-DESIGN.md section 4.)  L is the interaction length for paths along x and the
+README, Conventions.)  L is the interaction length for paths along x and the
 structure's thickness for paths crossing it, as in designer.evaluate.
 
 Robust aggregates combine the figure over several scenarios: :func:`worst_case`
@@ -308,7 +308,7 @@ def _peak_field(spec: Spec, layout) -> float:
 
 def build_model(scenario: Scenario, nominal: Spec, keys: tuple[str, ...], x0: np.ndarray,
                 bounds: dict[str, tuple[float, float]], method: str,
-                resolution_m: float | None, *, cache_size: int = 2) -> ScenarioModel:
+                grid_step_m: float | None, *, cache_size: int = 2) -> ScenarioModel:
     """The traced figures of ``scenario`` for design variables ``keys`` (see module doc).
 
     ``nominal`` fixes the path geometry; ``bounds`` (spec units) sizes the FDFD grid so
@@ -320,14 +320,14 @@ def build_model(scenario: Scenario, nominal: Spec, keys: tuple[str, ...], x0: np
     """
     if method == "layers":
         return _layers_model(scenario, nominal, keys, x0)
-    return _fdfd_model(scenario, nominal, keys, x0, bounds, resolution_m, cache_size)
+    return _fdfd_model(scenario, nominal, keys, x0, bounds, grid_step_m, cache_size)
 
 
 def _fixed_values(family, params) -> dict:
     return {k: v[0] for k, v in family.variables(params).items()}
 
 
-def _fdfd_model(scenario, nominal, keys, x0, bounds, resolution_m, cache_size=2):
+def _fdfd_model(scenario, nominal, keys, x0, bounds, grid_step_m, cache_size=2):
     from designer.evaluate import angular_frequency, corner_exclusion_mask, fdfd_problem
     from solvers import coupling
     from solvers.fdfd import e_magnitude_at_centres, field_solver
@@ -335,7 +335,7 @@ def _fdfd_model(scenario, nominal, keys, x0, bounds, resolution_m, cache_size=2)
     spec = scenario.spec
     family = get_family(spec.family)
     params = spec.sample
-    h = resolution_m
+    h = grid_step_m
     big = family.layout(_upper_params(family, params, keys, bounds), spec.context, h)
     layout = dataclasses.replace(big, angle_rad=scenario.angle_rad)
     omega = angular_frequency(spec.laser.wavelength_m)
@@ -536,7 +536,7 @@ class DensityChain:
 
         if self.radius_m is None:
             return jnp.asarray(rho, dtype=float)
-        return ff.conic_filter(rho, self.radius_m, self.dx, self.dz, periodic_x=self.periodic_x)
+        return ff.density_filter(rho, self.radius_m, self.dx, self.dz, periodic_x=self.periodic_x)
 
     def designs(self, rho, beta):
         """(1 or 3, nx, nz) projected designs (eroded, nominal, dilated when robust)."""
@@ -544,14 +544,14 @@ class DensityChain:
 
         rt = self.filtered(rho)
         if self.delta_eta is None:
-            return ff.project(rt, beta)[None]
+            return ff.threshold_projection(rt, beta)[None]
         return ff.robust_triple(rt, beta, self.delta_eta)
 
     def binarized(self, rho) -> np.ndarray:
         """The nominal design at ``beta = inf`` (0 or 1 per pixel): what is fabricated."""
         from designer import freeform as ff
 
-        return np.asarray(ff.project(self.filtered(rho), math.inf))
+        return np.asarray(ff.threshold_projection(self.filtered(rho), math.inf))
 
 
 def _density_objective(models, objective, aggregate, n_keys, shape, designs_of):

@@ -82,7 +82,7 @@ class PathSpec:
 
 @dataclass(frozen=True)
 class SolverSpec:
-    resolution_m: float | None      # None: chosen from wavelength and index
+    grid_step_m: float | None      # None: chosen from wavelength and index
     method: str                     # "auto" | "fdfd" | "layers"
     refine: bool                    # Richardson error estimate from a second resolution
     force: bool                     # accept coarse grids (below 8 cells per wavelength)
@@ -231,12 +231,12 @@ def _parse_path(r: TableReader) -> PathSpec:
 
 
 def _parse_solver(r: TableReader) -> SolverSpec:
-    resolution = r.length("resolution_nm", None, minimum=0.0, exclusive_minimum=True)
+    resolution = r.length("grid_step_nm", None, minimum=0.0, exclusive_minimum=True)
     method = r.string("method", "auto", choices=("auto", "fdfd", "layers"))
     refine = r.boolean("refine", True)
     force = r.boolean("force", False)
     r.finish()
-    return SolverSpec(resolution_m=resolution, method=method, refine=refine, force=force)
+    return SolverSpec(grid_step_m=resolution, method=method, refine=refine, force=force)
 
 
 def _parse_spectrum(r: TableReader) -> SpectrumSpec:

@@ -1,6 +1,6 @@
 """The electron coupling integral from sampled fields.
 
-For a straight path ``r(s) = r0 + s s_hat`` at speed v (DESIGN.md section 4):
+For a straight path ``r(s) = r0 + s s_hat`` at speed v (conventions in the README):
 
     I = int E(r(s)).s_hat exp(-i w s / v) ds            [V]
     beta_c = e I / (2 hbar w),  G = |I| / L,  kappa = G / E0,  damage factor = G / E_max.

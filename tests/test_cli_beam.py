@@ -15,7 +15,7 @@ def run(*argv):
 
 
 def test_beam_json_keys_and_values():
-    # 200 kV: beta = 0.69531, lambda_e = 2.5079 pm, computed from CODATA (REFERENCES.md);
+    # 200 kV: beta = 0.69531, lambda_e = 2.5079 pm, computed from CODATA;
     # Williams & Carter, Transmission Electron Microscopy, Table 1.1: 0.00251 nm (from memory)
     out = run("beam", "--voltage-kV", "200", "--json")
     assert out.returncode == 0, out.stderr

@@ -49,7 +49,7 @@ def sample_on_grid(func, grid, omega, bloch_kx):
 
 
 def test_kinematics_reference_values():
-    # REFERENCES.md (computed, CODATA): beta = 0.32838 at 30 kV, 0.54822 at 100 kV.
+    # computed from CODATA constants: beta = 0.32838 at 30 kV, 0.54822 at 100 kV.
     assert abs(V30 / sc.c - 0.32838) < 1e-5
     assert abs(V100 / sc.c - 0.54822) < 1e-5
 
@@ -116,7 +116,7 @@ def test_periodic_path_lattice_sum_vs_brute_force():
     # N periods sampled explicitly and integrated with the same rule, and the analytic
     # integral of the synthetic field (closed form of each exponential).
     beta = V30 / sc.c
-    period = 3 * beta * LAM  # Lambda = m beta lambda, m = 3 (REFERENCES.md)
+    period = 3 * beta * LAM  # Lambda = m beta lambda, m = 3
     kb = 0.1 * K0
     coeffs = {-1: 0.4 + 0.1j, 0: 0.05, 1: 1.0, 2: 0.2j}
     func = grating_field(period, kb, coeffs)
@@ -157,7 +157,7 @@ def film_fields(eps, zi, theta, ppw, box_margin=3.0, nx=4, period=LAM):
 
 
 def test_open_path_box_independence_and_exact_film():
-    # Box grown by a wavelength on each side changes I by < 0.1 % (DESIGN.md section 4);
+    # Box grown by a wavelength on each side changes I by < 0.1 % (README, Conventions);
     # the result agrees with the exact layer-stack coupling to O(dz^2).
     eps = [1.0, 4.0, 2.25]
     zi = [0.0, 200e-9]
@@ -299,7 +299,7 @@ def test_richardson_on_known_series():
 
 def test_coupling_result_figures():
     # beta_c = e I/(2 hbar w), so the classical energy change e|I| equals 2|beta_c| hbar w
-    # (DESIGN.md section 4); G = |I|/L, kappa = G/E0, damage factor G/E_max.
+    # (README, Conventions); G = |I|/L, kappa = G/E0, damage factor G/E_max.
     i = (3.0 - 4.0j) * 1e-6
     res = C.coupling_result(i, OMEGA, incident_amplitude=2.0, interaction_length=10e-6,
                             max_field_in_material=5.0, relative_error=1e-3)

@@ -36,18 +36,18 @@ def _meep_or_skip():
         skip_or_fail(f"Meep not available: {exc}")
 
 
-def film_raw(n=2.0, angle_deg=30.0, side="below", resolution_nm=9.5):
+def film_raw(n=2.0, angle_deg=30.0, side="below", grid_step_nm=9.5):
     return {
         "beam": {"voltage_kV": 100.0},
         "laser": {"wavelength_nm": LAM * 1e9, "angle_deg": angle_deg, "from": side},
         "sample": {"family": "membrane", "material": {"n": n}, "thickness_nm": 120.0,
                    "pattern": "none"},
         "path": {"x_nm": 0.0},
-        "solver": {"refine": False, "resolution_nm": resolution_nm},
+        "solver": {"refine": False, "grid_step_nm": grid_step_nm},
     }
 
 
-def grating_raw(resolution_nm=10.0):
+def grating_raw(grid_step_nm=10.0):
     # our own scenario: a glass-like (n = 1.45) tooth grating, phase-matched in first
     # order for 100 kV at 800 nm, lit at normal incidence through the substrate
     return {
@@ -55,7 +55,7 @@ def grating_raw(resolution_nm=10.0):
         "laser": {"wavelength_nm": LAM * 1e9},
         "sample": {"family": "grating", "material": {"n": 1.45}, "tooth_height_nm": 250.0},
         "path": {"offset_nm": 40.0, "length_um": 10.0},
-        "solver": {"refine": False, "resolution_nm": resolution_nm},
+        "solver": {"refine": False, "grid_step_nm": grid_step_nm},
     }
 
 
@@ -93,7 +93,7 @@ def test_meep_problem_has_the_spec_geometry_wavevector_and_region():
     prob = fdtd_problem(spec, layout, polys, bloch, [("z", x_line)])
     assert prob.kx == pytest.approx(2 * math.pi / LAM * math.sin(math.radians(30)), rel=1e-12)
     assert prob.period_x_m == pytest.approx(layout.grid.size_x)
-    assert prob.resolution_per_um * layout.grid.dx * 1e6 == pytest.approx(1.0)
+    assert prob.cells_per_um * layout.grid.dx * 1e6 == pytest.approx(1.0)
     assert [p.eps for p in prob.polygons] == [pytest.approx(4.0)]
     g = layout.grid
     z_lo, z_hi = physical_region(layout)
@@ -129,7 +129,7 @@ def test_wall_time_guard_stops_with_a_message():
 @pytest.mark.slow
 def test_empty_cell_through_crosscheck_is_the_incident_plane_wave():
     # a "film" of n = 1 is empty space: Ez along the path must be the incident wave,
-    # Ez = -E0 sin(theta) exp(i (kx x + kz z)) with E0 = 1 V/m (our convention, DESIGN.md;
+    # Ez = -E0 sin(theta) exp(i (kx x + kz z)) with E0 = 1 V/m (our convention, see the README;
     # plane-wave relations of Born & Wolf ch. 1)
     _meep_or_skip()
     theta = math.radians(30.0)
@@ -186,7 +186,7 @@ def test_prism_total_internal_reflection_agrees_with_closed_form():
     raw = {"beam": {"voltage_kV": 200.0}, "laser": {"wavelength_nm": 800.0},
            "sample": {"family": "prism", "material": {"n": 2.0}},
            "path": {"offset_nm": 60.0, "length_um": 5.0},
-           "solver": {"refine": False, "resolution_nm": 9.0}}
+           "solver": {"refine": False, "grid_step_nm": 9.0}}
     res = crosscheck(parse_spec(raw))
     assert res.fdtd_converged
     assert res.relative_difference < 0.03
@@ -196,7 +196,7 @@ def test_prism_total_internal_reflection_agrees_with_closed_form():
 @pytest.mark.slow
 def test_json_output_has_the_contract_keys(tmp_path):
     _meep_or_skip()
-    spec = write_spec(tmp_path, film_raw(resolution_nm=12.0))
+    spec = write_spec(tmp_path, film_raw(grid_step_nm=12.0))
     plot = tmp_path / "profile.png"
     out = subprocess.run([VELOMATCH, "crosscheck", str(spec), "--json", "--tolerance", "0.05",
                           "--plot", str(plot)], capture_output=True, text=True, timeout=300)
@@ -205,13 +205,13 @@ def test_json_output_has_the_contract_keys(tmp_path):
     for side in ("fdfd", "fdtd"):
         assert {"beta_c_per_field_m_per_V", "integral_V"} <= set(data[side])
         assert len(data[side]["integral_V"]) == 2
-    assert {"resolution_m", "wall_s"} <= set(data["fdtd"])
+    assert {"grid_step_m", "wall_s"} <= set(data["fdtd"])
     for key in ("relative_difference", "agree", "tolerance", "phase_difference_rad",
                 "profile_difference", "path", "provenance"):
         assert key in data
     assert data["tolerance"] == 0.05
     assert data["agree"] == (data["relative_difference"] <= 0.05)
     assert out.returncode == (0 if data["agree"] else 1)
-    assert data["fdfd"]["resolution_m"] == pytest.approx(12e-9, rel=0.05)
+    assert data["fdfd"]["grid_step_m"] == pytest.approx(12e-9, rel=0.05)
     assert data["provenance"]["spec_sha256"]
     assert plot.stat().st_size > 1000

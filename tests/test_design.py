@@ -62,7 +62,7 @@ tooth_height_nm = 130.0
 [path]
 length_um = 10.0
 [solver]
-resolution_nm = 20.0
+grid_step_nm = 20.0
 [fabrication]
 min_feature_nm = 60.0
 min_gap_nm = 60.0

@@ -23,7 +23,7 @@ def film_raw(method, side="below"):
         "sample": {"family": "membrane", "material": {"n": 2.0}, "thickness_nm": 120.0,
                    "pattern": "none"},
         "path": {"x_nm": 0.0},
-        "solver": {"method": method, "refine": False, "resolution_nm": 8.0},
+        "solver": {"method": method, "refine": False, "grid_step_nm": 8.0},
     }
 
 
@@ -41,7 +41,7 @@ def test_film_fdfd_matches_exact_layer_stack(side):
 def test_prism_evanescent_coupling_closed_form():
     # Total internal reflection in a medium of index n at the phase-matched angle
     # (n sin(theta) = c/v): the field above the surface is evanescent with decay
-    # constant kappa = omega / (c beta gamma) (REFERENCES.md, "Evanescent decay").
+    # constant kappa = omega / (c beta gamma) (closed form of the synchronous evanescent order).
     # p-polarized Fresnel transmission of the magnetic field (Born & Wolf, Principles of
     # Optics, ch. 1.5): t_H = 2 (kz1/eps1) / (kz1/eps1 + kz2/eps2), incident
     # Hy = n E0 / Z0; above the surface Ex = kz2 / (omega eps0) Hy_t exp(-kappa z) with
@@ -85,7 +85,7 @@ def test_lattice_sum_matches_five_period_supercell():
                       "period_nm": 0.9 * 0.32838 * 800.0, "duty_cycle": 0.5,
                       "tooth_height_nm": 200.0, "substrate": True},
            "path": {"offset_nm": 40.0, "length_um": 5 * 0.9 * 0.32838 * 0.8},
-           "solver": {"resolution_nm": 12.0, "refine": False}}
+           "solver": {"grid_step_nm": 12.0, "refine": False}}
     spec = parse_spec(raw)
     one = run_fdfd(spec, 12e-9)
     layout = one.layout
@@ -135,7 +135,7 @@ x_nm = 0.0
             "gradient_V_per_m", "structure_factor", "max_field_in_material_V_per_m",
             "damage_factor", "relative_error_estimate"}
     assert set(data["coupling"]) >= keys
-    assert set(data["provenance"]) >= {"version", "spec_sha256", "solver", "resolution_m"}
+    assert set(data["provenance"]) >= {"version", "spec_sha256", "solver", "grid_step_m"}
     c = data["coupling"]
     # couplings scale linearly with the field: beta_c = (beta_c per field) * E0
     assert c["beta_c"] == pytest.approx(c["beta_c_per_field_m_per_V"] * 2.0e8, rel=1e-12)
@@ -175,7 +175,7 @@ def test_laser_spot_footprint_reduces_prism_coupling():
 
 def test_electron_spot_average_above_a_prism():
     # Above a totally reflecting surface |beta_c(z)| = |beta_c(z0)| exp(-kappa (z - z0))
-    # (evanescent decay, kappa = omega / (c beta gamma); REFERENCES.md). A Gaussian
+    # (evanescent decay, kappa = omega / (c beta gamma)). A Gaussian
     # electron spot of standard deviation sigma across the height then sees
     # <|beta_c|> = |beta_c(z0)| exp(kappa^2 sigma^2 / 2) (the Gaussian moment-generating
     # function; common practice, no source), up to the +-3 sigma truncation (< 1e-3).
@@ -216,7 +216,7 @@ def test_grating_spot_clipped_by_the_teeth():
            "sample": {"family": "grating", "material": {"n": 1.45}, "duty_cycle": 0.5,
                       "tooth_height_nm": 200.0},
            "path": {"offset_nm": 10.0, "length_um": 5.0, "electron_spot_nm": 40.0},
-           "solver": {"resolution_nm": 10.0, "refine": False}}
+           "solver": {"grid_step_nm": 10.0, "refine": False}}
     ev = evaluate(parse_spec(raw))
     fig = coupling_figures(ev)
     dz = ev.run.layout.grid.dz

@@ -23,7 +23,7 @@ def test_defaults_when_table_absent():
     r = rules_from(None)
     assert r == fab.FabricationRules()
     assert r.min_feature_m == 0 and r.thickness_m is None and math.isinf(r.max_aspect_ratio)
-    assert r.corner_radius_m == pytest.approx(10 * NM)        # DESIGN.md section 4
+    assert r.corner_radius_m == pytest.approx(10 * NM)        # common practice, no source
 
 
 def test_full_table_in_si():

@@ -35,7 +35,7 @@ def test_family_names():
 
 
 def test_default_period_is_m_beta_lambda():
-    # REFERENCES.md "Phase matching" (computed from Lambda = m beta lambda, CODATA):
+    # phase matching (computed from Lambda = m beta lambda, CODATA):
     # 28 kV, 800 nm, m = 3 -> 763.5 nm
     ctx = _ctx(kv=28.0)
     p = _parse("grating", {"material": {"n": 1.45}, "order": 3}, ctx)
@@ -58,7 +58,7 @@ def test_phase_matched_angle_for_a_detuned_grating():
 
 
 def test_prism_phase_matched_angle():
-    # REFERENCES.md: n = 2.0244 (Si3N4 at 800 nm), 200 kV -> Cherenkov angle 44.72 deg
+    # computed: n = 2.0244 (Si3N4 at 800 nm), 200 kV -> Cherenkov angle 44.72 deg
     # from the electron direction, i.e. 90 - 44.72 = 45.28 deg from the surface normal
     ctx = _ctx(kv=200.0, angle=None)
     p = _parse("prism", {"material": {"n": 2.0244}}, ctx)
@@ -182,7 +182,7 @@ def test_layout_rules(name):
     p = _parse(name, CASES[name], ctx)
     lay = fam.layout(p, ctx, 12e-9)
     g = lay.grid
-    assert g.dx == g.dz == lay.resolution_m
+    assert g.dx == g.dz == lay.grid_step_m
     assert abs(g.dx - 12e-9) / 12e-9 < 0.1
     if lay.period_m is not None and name != "prism":
         assert g.nx * g.dx == pytest.approx(lay.period_m, rel=1e-12)

@@ -43,7 +43,7 @@ def _check_gradients(family_name, table, ctx, resolution):
     v0 = {k: jnp.asarray(v) for k, (v, lo, hi) in variables.items()}
     value, grad = jax.jit(jax.value_and_grad(objective))(v0)
     f = jax.jit(objective)
-    cell_nm = lay.resolution_m * 1e9
+    cell_nm = lay.grid_step_m * 1e9
     for key, (v, lo, hi) in variables.items():
         if key.endswith("_nm") or ".thickness_nm" in key:
             h = 1e-4 * cell_nm

@@ -144,7 +144,7 @@ def test_total_internal_reflection_decay_and_phase():
 @pytest.mark.parametrize("side", ["below", "above"])
 def test_empty_domain_amplitude_and_pml(angle_deg, side):
     # exact amplitude of the launched wave (requested 1 V/m) and PML reflection;
-    # target values from the task (common practice, no source)
+    # target values: common practice, no source
     d = spacing_for(LAM, 1.0, 30)
     g = Grid(3, 100, d, d, z0=-50 * d)
     prob = FdfdProblem(g, OMEGA, Pml(0, 20), PlaneWave(math.radians(angle_deg), side=side))
@@ -275,7 +275,7 @@ def _vacuum(nx=2, nz=100, cpw=30.0, npml=20):
 
 
 def test_guards():
-    # thresholds from the task (common practice, no source)
+    # thresholds: common practice, no source
     prob, g = _vacuum(cpw=40.0, npml=30)
     one = np.ones(g.shape)
     dense = one.copy()

@@ -162,7 +162,7 @@ def _film_problem(eps_film, res, side="below", angle_deg=30.0):
     return FdtdProblem(
         size_z_m=1.2 * UM, z_min_m=-0.6 * UM if side == "below" else -0.6 * UM,
         wavelength_m=0.8 * UM, period_x_m=0.1 * UM, pml_m=0.5 * UM,
-        angle_rad=np.deg2rad(angle_deg), side=side, resolution_per_um=res,
+        angle_rad=np.deg2rad(angle_deg), side=side, cells_per_um=res,
         polygons=(_slab(z_lo, z_hi, eps_film),), lines=(("z", 0.05 * UM),),
     )
 
@@ -170,7 +170,7 @@ def _film_problem(eps_film, res, side="below", angle_deg=30.0):
 def test_worker_script_runs_tiny_problem(tmp_path):
     python = _meep_or_skip()
     p = FdtdProblem(size_z_m=0.6 * UM, z_min_m=-0.3 * UM, wavelength_m=1.0 * UM,
-                    period_x_m=0.2 * UM, pml_m=0.3 * UM, resolution_per_um=20, whole_cell=True,
+                    period_x_m=0.2 * UM, pml_m=0.3 * UM, cells_per_um=20, whole_cell=True,
                     polygons=(_slab(0, 0.1 * UM, 2.25),), lines=(("x", 0.2 * UM),))
     src, dst = tmp_path / "p.json", tmp_path / "f.npz"
     src.write_text(json.dumps(p.to_json()))
@@ -181,7 +181,7 @@ def test_worker_script_runs_tiny_problem(tmp_path):
     with np.load(dst) as data:
         meta = json.loads(str(data["meta"]))
         assert meta["meep_version"].startswith("1.")
-        assert meta["resolution_per_um"] == 20
+        assert meta["cells_per_um"] == 20
         x, ex = data["line0_x"], data["line0_ex"]
         # one sample per pixel centre across the period: (i + 1/2) dx
         np.testing.assert_allclose(x, (np.arange(4) + 0.5) * 0.05 * UM, rtol=0, atol=1e-15)
@@ -200,7 +200,7 @@ def test_empty_cell_reproduces_incident_peak_field(side):
     """Incidence medium everywhere: the field must be the requested plane wave.
 
     Plane-wave relations Hy = n E0 / Z0, E perpendicular to k (Born & Wolf, Principles
-    of Optics, 1999, sec. 1.4); the 1 % tolerance is the brief's.
+    of Optics, 1999, sec. 1.4); the 1 % tolerance is common practice, no source.
     """
     _meep_or_skip()
     n, e0, th = 1.5, 2.5, np.deg2rad(20.0)
@@ -208,7 +208,7 @@ def test_empty_cell_reproduces_incident_peak_field(side):
     msgs = []
     p = FdtdProblem(size_z_m=1.0 * UM, z_min_m=-0.4 * UM, wavelength_m=lam,
                     period_x_m=0.15 * UM, pml_m=0.5 * UM, angle_rad=th, eps_incidence=n**2,
-                    eps_background=n**2, side=side, resolution_per_um=60,
+                    eps_background=n**2, side=side, cells_per_um=60,
                     amplitude_V_per_m=e0, lines=(("z", 0.07 * UM), ("x", 0.37 * UM)))
     r = run_fdtd(p, progress=msgs.append)
     assert r.converged
@@ -246,7 +246,7 @@ def test_film_at_oblique_incidence_matches_airy(eps_film):
     k0, th, d = 2 * np.pi / (0.8 * UM), np.deg2rad(30.0), 0.2 * UM
     hy, ex, ez = layer_fields_tm(line.z, line.x, [1, eps_film, 1], [d], k0, k0 * np.sin(th),
                                  1 / Z0)
-    dx = r.resolution_m
+    dx = r.grid_step_m
     # Ez jumps at the interfaces; samples within a pixel of one mix both sides
     off = (np.abs(line.z) > 1.01 * dx) & (np.abs(line.z - d) > 1.01 * dx)
     assert _rel_err(line.hy, hy) < 0.02
@@ -262,7 +262,7 @@ def test_film_lit_from_above_is_the_mirror_image():
     line = r.lines[0]
     k0, th, d = 2 * np.pi / (0.8 * UM), np.deg2rad(30.0), 0.2 * UM
     hy, ex, ez = layer_fields_tm(-line.z, line.x, [1, 4.0, 1], [d], k0, k0 * np.sin(th), 1 / Z0)
-    dx = r.resolution_m
+    dx = r.grid_step_m
     off = (np.abs(line.z) > 1.01 * dx) & (np.abs(line.z + d) > 1.01 * dx)
     assert _rel_err(line.hy, hy) < 0.02
     assert _rel_err(line.ex, -ex) < 0.02
@@ -277,7 +277,7 @@ def test_total_internal_reflection_decay_constant():
     n, th, lam = 1.5, np.deg2rad(60.0), 0.8 * UM
     p = FdtdProblem(size_z_m=1.4 * UM, z_min_m=-0.5 * UM, wavelength_m=lam, period_x_m=0.1 * UM,
                     pml_m=0.5 * UM, angle_rad=th, eps_incidence=n**2, side="below",
-                    resolution_per_um=80,
+                    cells_per_um=80,
                     polygons=(_slab(-5 * UM, 0.0, n**2),), lines=(("z", 0.03 * UM),))
     r = run_fdtd(p)
     line = r.lines[0]
@@ -291,7 +291,7 @@ def test_total_internal_reflection_decay_constant():
     # and the whole field, against the Fresnel coefficients with imaginary kz
     hy, ex, ez = layer_fields_tm(line.z, line.x, [n**2, 1.0], [], k0, n * k0 * np.sin(th),
                                  n / Z0)
-    off = np.abs(line.z) > 1.01 * r.resolution_m
+    off = np.abs(line.z) > 1.01 * r.grid_step_m
     assert _rel_err(line.hy, hy) < 0.02
     assert _rel_err(line.ex, ex) < 0.02
     assert _rel_err(line.ez, ez, off) < 0.02
@@ -314,7 +314,7 @@ def test_film_at_normal_incidence_in_a_cell_with_pml_on_x():
     _meep_or_skip()
     d = 0.2 * UM
     p = FdtdProblem(size_z_m=1.2 * UM, z_min_m=-0.5 * UM, wavelength_m=0.8 * UM,
-                    size_x_m=1.6 * UM, x_min_m=-0.8 * UM, pml_m=0.5 * UM, resolution_per_um=50,
+                    size_x_m=1.6 * UM, x_min_m=-0.8 * UM, pml_m=0.5 * UM, cells_per_um=50,
                     polygons=(_slab(0, d, 4.0),), lines=(("z", 0.0), ("x", 0.5 * UM)))
     r = run_fdtd(p)
     axis, top = r.lines
@@ -345,7 +345,7 @@ def test_wall_time_guard_stops_the_worker():
 
 
 @pytest.mark.slow
-def test_film_error_falls_with_resolution_at_second_order():
+def test_film_error_falls_with_grid_step_at_second_order():
     """Yee scheme: field error ~ dx^2 (A. Taflove & S. C. Hagness, Computational
     Electrodynamics, 3rd ed., 2005, ch. 4); expect a ratio near (120/40)^2 = 9."""
     _meep_or_skip()

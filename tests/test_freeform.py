@@ -38,10 +38,10 @@ def test_filter_matches_definition_and_preserves_constants(periodic_x):
     rng = np.random.default_rng(3)
     rho = rng.random((13, 9))
     dx, dz, radius = 4e-9, 5e-9, 13e-9
-    got = np.asarray(ff.conic_filter(rho, radius, dx, dz, periodic_x=periodic_x))
+    got = np.asarray(ff.density_filter(rho, radius, dx, dz, periodic_x=periodic_x))
     np.testing.assert_allclose(got, brute_force_filter(rho, radius, dx, dz, periodic_x),
                                rtol=0, atol=1e-13)
-    const = np.asarray(ff.conic_filter(np.full((13, 9), 0.37), radius, dx, dz,
+    const = np.asarray(ff.density_filter(np.full((13, 9), 0.37), radius, dx, dz,
                                        periodic_x=periodic_x))
     np.testing.assert_allclose(const, 0.37, rtol=0, atol=1e-14)
 
@@ -52,7 +52,7 @@ def test_periodic_filter_conserves_mass_along_x():
     # (common practice, no source).
     rng = np.random.default_rng(5)
     rho = np.repeat(rng.random((16, 1)), 4, axis=1)
-    out = np.asarray(ff.conic_filter(rho, 15e-9, 5e-9, 5e-9, periodic_x=True))
+    out = np.asarray(ff.density_filter(rho, 15e-9, 5e-9, 5e-9, periodic_x=True))
     np.testing.assert_allclose(out.sum(axis=0), rho.sum(axis=0), rtol=1e-13)
 
 
@@ -62,18 +62,18 @@ def test_projection_limits():
     # rho_bar(0) = 0, rho_bar(1) = 1, beta -> 0 gives the identity, beta -> inf the step.
     x = jnp.linspace(0.0, 1.0, 101)
     for eta in (0.3, 0.5, 0.7):
-        p = ff.project(x, 8.0, eta)
+        p = ff.threshold_projection(x, 8.0, eta)
         assert abs(float(p[0])) < 1e-15 and abs(float(p[-1]) - 1) < 1e-15
         assert bool(jnp.all(jnp.diff(p) > 0))
-        np.testing.assert_allclose(ff.project(x, 1e-5, eta), x, atol=1e-9)
+        np.testing.assert_allclose(ff.threshold_projection(x, 1e-5, eta), x, atol=1e-9)
         far = jnp.abs(x - eta) > 0.01
         step = (x > eta).astype(float)
-        np.testing.assert_allclose(np.where(far, ff.project(x, 1e4, eta), step), step,
+        np.testing.assert_allclose(np.where(far, ff.threshold_projection(x, 1e4, eta), step), step,
                                    atol=1e-12)
-        np.testing.assert_array_equal(ff.project(x, math.inf, eta)[far], step[far])
-    assert float(ff.project(jnp.array(0.5), math.inf, 0.5)) == 0.5
+        np.testing.assert_array_equal(ff.threshold_projection(x, math.inf, eta)[far], step[far])
+    assert float(ff.threshold_projection(jnp.array(0.5), math.inf, 0.5)) == 0.5
     # symmetry about eta = 1/2: rho_bar(1 - x) = 1 - rho_bar(x)
-    np.testing.assert_allclose(ff.project(1 - x, 5.0), 1 - ff.project(x, 5.0), atol=1e-14)
+    np.testing.assert_allclose(ff.threshold_projection(1 - x, 5.0), 1 - ff.threshold_projection(x, 5.0), atol=1e-14)
 
 
 def test_beta_schedule_doubles_and_saturates():
@@ -86,10 +86,10 @@ def test_beta_schedule_doubles_and_saturates():
 
 def test_robust_triple_orders_eroded_nominal_dilated():
     rng = np.random.default_rng(0)
-    rt = ff.conic_filter(rng.random((20, 20)), 12e-9, 3e-9, 3e-9)
+    rt = ff.density_filter(rng.random((20, 20)), 12e-9, 3e-9, 3e-9)
     ero, nom, dil = ff.robust_triple(rt, 16.0, 0.2)
     assert bool(jnp.all(ero <= nom)) and bool(jnp.all(nom <= dil))
-    np.testing.assert_allclose(nom, ff.project(rt, 16.0, 0.5), atol=0)
+    np.testing.assert_allclose(nom, ff.threshold_projection(rt, 16.0, 0.5), atol=0)
     with pytest.raises(ValueError):
         ff.robust_thresholds(0.5)
 
@@ -97,7 +97,7 @@ def test_robust_triple_orders_eroded_nominal_dilated():
 # ---------------------------------------------------------------- gradients
 def test_gradient_chain_matches_finite_differences():
     grid = Grid(nx=12, nz=14, dx=5e-9, dz=5e-9)
-    region = ff.DesignRegion(10e-9, 50e-9, 15e-9, 55e-9, eps_solid=2.1 + 0.05j, eps_void=1.0)
+    region = ff.DensityPatch(10e-9, 50e-9, 15e-9, 55e-9, eps_solid=2.1 + 0.05j, eps_void=1.0)
     cells = ff.region_cells(region, grid)
     rng = np.random.default_rng(1)
     base_x = jnp.asarray(1.0 + rng.random(grid.shape))
@@ -106,12 +106,12 @@ def test_gradient_chain_matches_finite_differences():
     wz = jnp.asarray(rng.standard_normal(grid.shape))
 
     def objective(rho, beta):
-        rt = ff.conic_filter(rho, 11e-9, grid.dx, grid.dz)
+        rt = ff.density_filter(rho, 11e-9, grid.dx, grid.dz)
         eps = ff.density_to_eps(ff.robust_triple(rt, beta, 0.15)[0], region.eps_void,
                                 region.eps_solid)
         ex, ez = ff.place_eps(base_x, base_z, eps, cells)
         return jnp.sum(wx * jnp.abs(ex) ** 2) + jnp.sum(wz * jnp.real(ez)) \
-            + ff.grayness(ff.project(rt, beta))
+            + ff.grayness(ff.threshold_projection(rt, beta))
 
     objective = jax.jit(objective)
     rho = jnp.asarray(rng.random(cells.shape))
@@ -129,7 +129,7 @@ def test_gradient_chain_matches_finite_differences():
 # ---------------------------------------------------------------- permittivity
 def test_place_eps_averages_to_yee_faces():
     grid = Grid(nx=10, nz=8, dx=1e-8, dz=1e-8)
-    region = ff.DesignRegion(20e-9, 70e-9, 20e-9, 60e-9, eps_solid=4.0)
+    region = ff.DensityPatch(20e-9, 70e-9, 20e-9, 60e-9, eps_solid=4.0)
     cells = ff.region_cells(region, grid)
     assert (cells.i0, cells.i1, cells.k0, cells.k1) == (2, 7, 2, 6)
     rng = np.random.default_rng(2)
@@ -160,7 +160,7 @@ def test_place_eps_averages_to_yee_faces():
 
 def test_place_eps_periodic_and_uniform():
     grid = Grid(nx=6, nz=6, dx=1e-8, dz=1e-8)
-    region = ff.DesignRegion(0.0, 60e-9, 10e-9, 40e-9, eps_solid=3.0, periodic_x=True)
+    region = ff.DensityPatch(0.0, 60e-9, 10e-9, 40e-9, eps_solid=3.0, periodic_x=True)
     cells = ff.region_cells(region, grid)
     ones = jnp.ones(grid.shape)
     # a uniform design equal to the background leaves the raster unchanged
@@ -171,7 +171,7 @@ def test_place_eps_periodic_and_uniform():
     _, ez = ff.place_eps(ones, ones, e, cells)
     np.testing.assert_allclose(ez[0, cells.k0:cells.k1], 0.5 * (e[0] + e[-1]))
     with pytest.raises(ValueError, match="whole period"):
-        ff.region_cells(ff.DesignRegion(0.0, 30e-9, 0.0, 20e-9, 2.0, periodic_x=True), grid)
+        ff.region_cells(ff.DensityPatch(0.0, 30e-9, 0.0, 20e-9, 2.0, periodic_x=True), grid)
 
 
 def test_density_to_eps_and_grayness():
@@ -204,7 +204,7 @@ def test_length_scale_against_discrete_filtered_bar(kernel):
     for width_px in (21, 33, 45, 61):
         rho = np.zeros((nx, 1 if kernel == "1d" else 81))
         rho[nx // 2 - width_px // 2: nx // 2 + width_px // 2 + 1] = 1.0
-        rt = np.asarray(ff.conic_filter(rho, radius, h, h))[:, rho.shape[1] // 2]
+        rt = np.asarray(ff.density_filter(rho, radius, h, h))[:, rho.shape[1] // 2]
         delta = rt.max() - 0.5
         x = (np.arange(nx) - nx // 2) * h
         right = np.arange(nx // 2, nx)
@@ -218,11 +218,11 @@ def test_length_scale_against_discrete_filtered_bar(kernel):
 
 def _optimize_to_target(target, robust, radius, h, delta_eta, steps=180):
     def loss(theta, beta):
-        rt = ff.conic_filter(jax.nn.sigmoid(theta), radius, h, h)
+        rt = ff.density_filter(jax.nn.sigmoid(theta), radius, h, h)
         if robust:      # worst case of eroded, nominal, dilated (Wang et al. 2011)
             return jnp.max(jnp.mean((ff.robust_triple(rt, beta, delta_eta) - target) ** 2,
                                     axis=(1, 2)))
-        return jnp.mean((ff.project(rt, beta) - target) ** 2)
+        return jnp.mean((ff.threshold_projection(rt, beta) - target) ** 2)
 
     step = jax.jit(jax.value_and_grad(loss))
     theta = 0.1 * jnp.asarray(np.random.default_rng(1).standard_normal(target.shape))
@@ -233,7 +233,7 @@ def _optimize_to_target(target, robust, radius, h, delta_eta, steps=180):
         _, g = step(theta, schedule(n))
         updates, state = opt.update(g, state)
         theta = optax.apply_updates(theta, updates)
-    rho_bar = ff.project(ff.conic_filter(jax.nn.sigmoid(theta), radius, h, h), 64.0)
+    rho_bar = ff.threshold_projection(ff.density_filter(jax.nn.sigmoid(theta), radius, h, h), 64.0)
     return rho_bar
 
 
@@ -293,7 +293,7 @@ def test_filtered_random_field_with_robust_cleaning_passes():
     h, radius = 5e-9, 20e-9
     rng = np.random.default_rng(7)
     rho = rng.random((60, 60))
-    ero = ff.binarize(ff.project(ff.conic_filter(rho, radius, h, h), 64.0, 0.55))
+    ero = ff.binarize(ff.threshold_projection(ff.density_filter(rho, radius, h, h), 64.0, 0.55))
     length = 30e-9
     disc = fab.disc_element(length, h, h)
     cleaned = ndimage.binary_dilation(ndimage.binary_erosion(ero, disc, border_value=1),

@@ -45,7 +45,7 @@ z_nm = [0.0, 120.0]
 [path]
 length_um = 10.0
 [solver]
-resolution_nm = {resolution}
+grid_step_nm = {resolution}
 refine = false
 [fabrication]
 min_feature_nm = 40.0
@@ -103,7 +103,7 @@ def test_region_holding_the_family_pattern_matches_the_exact_raster(tmp_path):
     text = SPEC.format(freeform="", resolution=10.0, iterations=2, sample_extra="")
     spec = load_spec(write(tmp_path, freeform=""))
     family = get_family("grating")
-    h = spec.solver.resolution_m
+    h = spec.solver.grid_step_m
     probe = family.layout(spec.sample, spec.context, h)
     # choose the tooth height as a whole number of cells so that the tooth is pixel-aligned
     rows = 12
@@ -140,7 +140,7 @@ def test_region_holding_the_family_pattern_matches_the_exact_raster(tmp_path):
 def test_stored_density_is_placed_exactly_and_resampled_by_nearest_pixel(tmp_path):
     spec = load_spec(write(tmp_path, freeform=""))
     family = get_family("grating")
-    lay = family.layout(spec.sample, spec.context, spec.solver.resolution_m)
+    lay = family.layout(spec.sample, spec.context, spec.solver.grid_step_m)
     cells = region.region_cells(spec.sample.freeform, lay)
     rng = np.random.default_rng(4)
     rho = (rng.random(cells.shape) > 0.5).astype(float)
@@ -151,7 +151,7 @@ def test_stored_density_is_placed_exactly_and_resampled_by_nearest_pixel(tmp_pat
     again = parse_spec(raw, source="t", base_dir=tmp_path)
     np.testing.assert_array_equal(family.freeform_density(again.sample, lay), rho)
     # on a grid 1.5x coarser every cell takes the stored pixel its centre falls in
-    coarse = family.layout(again.sample, again.context, 1.5 * spec.solver.resolution_m)
+    coarse = family.layout(again.sample, again.context, 1.5 * spec.solver.grid_step_m)
     cc = region.region_cells(again.sample.freeform, coarse)
     got = family.freeform_density(again.sample, coarse)
     xc = coarse.grid.x_centres()[cc.i0:cc.i1]
@@ -244,7 +244,7 @@ def _pattern_spec(tmp_path, columns, *, rows_solid=None, period_nm=505.0):
     extra = f"period_nm = {period_nm}"
     spec = load_spec(write(tmp_path, freeform="", sample_extra=extra, name="probe.toml"))
     family = get_family("grating")
-    lay = family.layout(spec.sample, spec.context, spec.solver.resolution_m)
+    lay = family.layout(spec.sample, spec.context, spec.solver.grid_step_m)
     cells = region.region_cells(spec.sample.freeform, lay)
     cols = np.asarray(columns, dtype=float)
     assert cols.size == cells.shape[0]

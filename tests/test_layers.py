@@ -39,7 +39,7 @@ def fresnel(n1, n2, theta):
 
 @pytest.mark.parametrize("theta_deg", [0.0, 20.0, 50.0, 70.0])
 def test_half_space_fresnel(theta_deg):
-    # Born & Wolf ch. 1.5.2; Brewster angle of n=1.45332 is 55.47 deg (REFERENCES.md).
+    # Born & Wolf ch. 1.5.2; Brewster angle of n=1.45332 is 55.47 deg.
     n1, n2 = 1.0, 1.45332
     th = np.radians(theta_deg)
     rs, ts, rp, tp = fresnel(n1, n2, th)
@@ -52,7 +52,7 @@ def test_half_space_fresnel(theta_deg):
 
 
 def test_brewster_and_normal_reflectance():
-    # REFERENCES.md (computed): fused silica at 800 nm, R(0) = 0.0341, Brewster 55.47 deg.
+    # computed from the formula with CODATA constants: fused silica at 800 nm, R(0) = 0.0341, Brewster 55.47 deg.
     n = 1.45332
     s0 = L.solve_plane_wave([1.0, n**2], [0.0], OMEGA, 0.0)
     assert abs(float(L.reflectance_transmittance(s0)[0]) - 0.0341) < 5e-5
@@ -151,7 +151,7 @@ def test_fields_satisfy_maxwell_and_normalization():
     zi = [0.0, 200e-9]
     th = 0.4
     sol = L.solve_plane_wave(eps, zi, OMEGA, th)
-    # uniform medium: a pure plane wave of peak |E| = 1 V/m (DESIGN.md section 3)
+    # uniform medium: a pure plane wave of peak |E| = 1 V/m (peak-amplitude convention, README)
     uni = L.solve_plane_wave([2.25, 2.25, 2.25], zi, OMEGA, th)
     ex, ez, _ = L.stack_fields(uni, 0.3e-6, np.linspace(-1e-6, 1e-6, 7))
     assert np.allclose(np.sqrt(abs(ex) ** 2 + abs(ez) ** 2), 1.0, atol=1e-12)
@@ -254,7 +254,7 @@ def test_gradients_match_finite_differences():
 
 
 def test_prism_phase_matching_and_decay():
-    # REFERENCES.md (computed): Si3N4 n = 2.02416 at 800 nm, 200 kV: Cherenkov angle
+    # computed from the formula with CODATA constants: Si3N4 n = 2.02416 at 800 nm, 200 kV: Cherenkov angle
     # 44.72 deg from the electron direction (incidence 45.28 deg from the normal), and
     # the synchronous evanescent decay length beta gamma lambda / 2 pi = 123.2 nm.
     n = 2.02416

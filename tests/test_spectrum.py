@@ -16,7 +16,7 @@ OMEGA = 2 * np.pi * sc.c / LAM
 def test_sum_rules(beta):
     # sum J_l(x)^2 = 1, sum l J_l^2 = 0, sum l^2 J_l(x)^2 = x^2/2 (Neumann's addition
     # theorem; Abramowitz & Stegun 9.1.76 and its derivatives -- numbers from memory),
-    # with x = 2|beta|: sum l^2 P_l = 2|beta|^2 (REFERENCES.md, PINEM).
+    # with x = 2|beta|: sum l^2 P_l = 2|beta|^2 (identity of Bessel functions, Abramowitz & Stegun 9.1.27 and 9.1.76).
     orders, p = S.sideband_probabilities(beta)
     assert abs(p.sum() - 1) < 1e-13
     assert abs(np.sum(orders * p)) < 1e-12
@@ -37,7 +37,7 @@ def test_zero_loss_line_vanishes_at_first_bessel_zero():
 
 @pytest.mark.parametrize("i_volts", [5.0, 20.0])
 def test_cutoff_matches_classical_energy_change(i_volts):
-    # Classical maximum energy change e|I| = 2|beta_c| hbar w (DESIGN.md section 4): the
+    # Classical maximum energy change e|I| = 2|beta_c| hbar w (conventions in the README): the
     # outermost sideband peak sits at l = x - 0.8086 x^(1/3), x = e|I|/(hbar w), from the
     # transition-region form J_l(x) ~ (2/l)^(1/3) Ai(2^(1/3)(l - x)/l^(1/3))
     # (A&S 9.3.23; Ai maximum at -1.0188, A&S 10.4 -- values from memory), and lines

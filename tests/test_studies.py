@@ -6,7 +6,7 @@ cores) and assert its headline numbers against sources outside the project:
 * closed forms: the synchronous period Lambda = m beta lambda (R. J. England et al.,
   Rev. Mod. Phys. 86, 1337, 2014 — from memory), the decay length of the synchronous
   evanescent field beta gamma lambda / 2 pi and the Cherenkov / TIR phase-matching
-  angle sin(theta) = 1/(n beta) (REFERENCES.md, "Phase matching"; I. M. Frank &
+  angle sin(theta) = 1/(n beta) (I. M. Frank &
   I. E. Tamm, 1937 — from memory), the detuned coupling |sin(delta L/2)/(delta/2)|
   (integral of exp(i delta x) over L, elementary), the PINEM identities
   sum P_l = 1 and sum l^2 J_l(x)^2 = x^2/2 (F. J. García de Abajo et al., Nano Lett.
@@ -15,7 +15,7 @@ cores) and assert its headline numbers against sources outside the project:
   of two Gaussians, elementary);
 * handbook indices: fused silica 1.45332 (I. H. Malitson, JOSA 55, 1205, 1965),
   sapphire n_o 1.76013 (Malitson & Dodge 1972), silicon nitride 2.02416 (K. Luke et
-  al., Opt. Lett. 40, 4823, 2015), all at 800 nm, as listed in REFERENCES.md;
+  al., Opt. Lett. 40, 4823, 2015), all at 800 nm;
 * an independent solver: Meep (A. F. Oskooi et al., Comput. Phys. Commun. 181, 687,
   2010), through ``velomatch crosscheck``, against FDFD and the exact layer stack;
 * structural facts: GDSII tooth count = round(L / Lambda), the design-rule check is
@@ -185,7 +185,7 @@ def test_prism_study(tmp_path):
     s = _load("prism_tir").main(["--quick", "--out", str(tmp_path / "p")])
     beta, gamma = _kinematics(120e3)
     lam = 800e-9
-    # handbook indices at 800 nm (REFERENCES.md): who can phase-match (n beta > 1)
+    # handbook indices at 800 nm: who can phase-match (n beta > 1)
     assert 1.45332 * beta < 1 and "fused_silica" not in s["phase_matching_materials"]
     assert 1.76013 * beta > 1 and "sapphire" in s["phase_matching_materials"]
     assert "silicon_nitride" in s["phase_matching_materials"]

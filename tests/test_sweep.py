@@ -42,7 +42,7 @@ FILM = {
 # -- closed form (independent of solvers/layers.py) ---------------------------------
 
 def electron_beta(voltage_V: float) -> float:
-    """beta from gamma = 1 + eU/(m_e c^2) (REFERENCES.md, electron kinematics)."""
+    """beta from gamma = 1 + eU/(m_e c^2) (CODATA constants)."""
     gamma = 1.0 + sc.e * voltage_V / (sc.m_e * sc.c**2)
     return math.sqrt(1.0 - 1.0 / gamma**2)
 
@@ -420,7 +420,7 @@ def test_film_guides_are_the_airy_transmission_maxima(tmp_path):
 
 
 def test_grating_guide_is_the_synchronous_period():
-    """Lambda = m beta lambda; 28 kV, 800 nm, m = 3 -> 763.5 nm (REFERENCES.md, computed)."""
+    """Lambda = m beta lambda; 28 kV, 800 nm, m = 3 -> 763.5 nm (computed with CODATA constants)."""
     grating = {"beam": {"voltage_kV": 28.0},
                "laser": {"wavelength_nm": 800.0},
                "sample": {"family": "grating", "material": {"n": 1.45}, "period_nm": 700.0,

@@ -5,7 +5,7 @@
     parse(reader, ctx) -> Params          to_table(params) -> dict
     variables(params) -> {key: (value, lo, hi)}   (spec units)
     replace(params, values) -> Params     laser_angle(params, ctx) -> rad
-    layout(params, ctx, resolution_m) -> SimulationLayout
+    layout(params, ctx, grid_step_m) -> SimulationLayout
     permittivity(params, layout, values=None, density=None) -> (eps_x, eps_z)
                                           (JAX-traceable in values and density)
     layer_stack(params, ctx) -> LayerStack | None

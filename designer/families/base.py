@@ -89,7 +89,7 @@ class SimulationLayout:
     angle_rad: float
     material_mask: np.ndarray
     path: PathGeometry
-    resolution_m: float = 0.0
+    grid_step_m: float = 0.0
     structure_z_m: tuple[float, float] = (0.0, 0.0)
     wavelength_m: float = 0.0
 
@@ -174,7 +174,7 @@ def material_with_eps(ref: MaterialRef, eps: complex) -> MaterialRef:
 def decay_length(ctx: SampleContext) -> float:
     """Evanescent decay length of the synchronous field, 1/kappa = beta gamma lambda/2pi.
 
-    Source: the standard synchronous-harmonic result (REFERENCES.md, "Phase matching").
+    Source: the standard synchronous-harmonic result (Lambda = m beta lambda; e.g. R. J. England et al., Rev. Mod. Phys. 86, 1337, 2014).
     """
     return ctx.beta * ctx.gamma * ctx.wavelength_m / (2.0 * math.pi)
 
@@ -191,9 +191,9 @@ def margin_m(wavelength_m: float) -> float:
     return 0.5 * wavelength_m
 
 
-def cells_per_period(period_m: float, resolution_m: float, minimum: int = 4) -> int:
+def cells_per_period(period_m: float, grid_step_m: float, minimum: int = 4) -> int:
     """Integer number of cells in one period for a requested cell size."""
-    return max(minimum, int(round(period_m / resolution_m)))
+    return max(minimum, int(round(period_m / grid_step_m)))
 
 
 def z_grid(z_lo_m: float, z_hi_m: float, dz: float, n_pml: int) -> tuple[float, int]:

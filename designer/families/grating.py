@@ -302,10 +302,10 @@ def laser_angle(p: GratingParams, ctx: SampleContext) -> float:
     return base.angle_from_incidence(s, ctx, f"the period {p.period_m * 1e9:.4g} nm")
 
 
-def layout(p: GratingParams, ctx: SampleContext, resolution_m: float) -> SimulationLayout:
+def layout(p: GratingParams, ctx: SampleContext, grid_step_m: float) -> SimulationLayout:
     """Bloch cell of one period; z: PML, margin, structure, path room, margin, PML."""
     P = p.period_m
-    nx = base.cells_per_period(P, resolution_m)
+    nx = base.cells_per_period(P, grid_step_m)
     dx = P / nx
     n_pml = base.pml_cells(ctx.wavelength_m, dx)
     margin = base.margin_m(ctx.wavelength_m)
@@ -323,7 +323,7 @@ def layout(p: GratingParams, ctx: SampleContext, resolution_m: float) -> Simulat
         grid=grid, pml_cells_z=n_pml, pml_cells_x=0, period_m=P,
         eps_incidence=_eps_incidence(p, ctx.from_side), from_side=ctx.from_side,
         z_source_m=base.source_plane(grid, n_pml, ctx.from_side),
-        angle_rad=laser_angle(p, ctx), material_mask=mask, path=path, resolution_m=dx,
+        angle_rad=laser_angle(p, ctx), material_mask=mask, path=path, grid_step_m=dx,
         structure_z_m=(z_bot, z_top), wavelength_m=ctx.wavelength_m)
     if p.freeform is None:
         return out

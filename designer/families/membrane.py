@@ -258,13 +258,13 @@ def _electron_x(p: MembraneParams, ctx: SampleContext) -> float:
     return base.path_number(ctx, "x_nm", 0.0)
 
 
-def layout(p: MembraneParams, ctx: SampleContext, resolution_m: float) -> SimulationLayout:
+def layout(p: MembraneParams, ctx: SampleContext, grid_step_m: float) -> SimulationLayout:
     """z: PML, margin, path room, film, path room, margin, PML; x: one Bloch period."""
     if p.pattern == "slits":
-        nx = base.cells_per_period(p.period_m, resolution_m)
+        nx = base.cells_per_period(p.period_m, grid_step_m)
         dx = p.period_m / nx
     else:
-        nx, dx = _PLAIN_CELLS, resolution_m
+        nx, dx = _PLAIN_CELLS, grid_step_m
     period = nx * dx
     n_pml = base.pml_cells(ctx.wavelength_m, dx)
     margin = base.margin_m(ctx.wavelength_m)
@@ -280,7 +280,7 @@ def layout(p: MembraneParams, ctx: SampleContext, resolution_m: float) -> Simula
     out = SimulationLayout(
         grid=grid, pml_cells_z=n_pml, pml_cells_x=0, period_m=period, eps_incidence=1.0 + 0j,
         from_side=ctx.from_side, z_source_m=base.source_plane(grid, n_pml, ctx.from_side),
-        angle_rad=laser_angle(p, ctx), material_mask=mask, path=path, resolution_m=dx,
+        angle_rad=laser_angle(p, ctx), material_mask=mask, path=path, grid_step_m=dx,
         structure_z_m=(0.0, t), wavelength_m=ctx.wavelength_m)
     if p.freeform is None:
         return out

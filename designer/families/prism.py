@@ -172,9 +172,9 @@ def _electron_z(p: PrismParams, ctx: SampleContext) -> float:
     return _top(p) + base.path_number(ctx, "offset_nm", 0.5 * base.decay_length(ctx))
 
 
-def layout(p: PrismParams, ctx: SampleContext, resolution_m: float) -> SimulationLayout:
+def layout(p: PrismParams, ctx: SampleContext, grid_step_m: float) -> SimulationLayout:
     """Short Bloch cell; z: PML and margin inside the prism, layers, path room, PML."""
-    nx, dx = _CELLS_X, resolution_m
+    nx, dx = _CELLS_X, grid_step_m
     period = nx * dx
     n_pml = base.pml_cells(ctx.wavelength_m, dx)
     margin = base.margin_m(ctx.wavelength_m)
@@ -190,7 +190,7 @@ def layout(p: PrismParams, ctx: SampleContext, resolution_m: float) -> Simulatio
         grid=grid, pml_cells_z=n_pml, pml_cells_x=0, period_m=period,
         eps_incidence=p.material.eps, from_side="below",
         z_source_m=base.source_plane(grid, n_pml, "below"), angle_rad=laser_angle(p, ctx),
-        material_mask=mask, path=path, resolution_m=dx, structure_z_m=(0.0, top),
+        material_mask=mask, path=path, grid_step_m=dx, structure_z_m=(0.0, top),
         wavelength_m=ctx.wavelength_m)
 
 

@@ -16,7 +16,7 @@ there (the fill fraction of each cell by the family's pieces).
 
 The design pixels are the FDFD cells whose centres lie in the region
 (designer.freeform.region_cells).  What a spec *evaluates* is the density placed as
-it is, binarized at 0.5 (``freeform.project`` with ``beta = inf``, no filter; a value of
+it is, binarized at 0.5 (``freeform.threshold_projection`` with ``beta = inf``, no filter; a value of
 exactly 0.5 stays half way).  A design run stores its final pattern already filtered
 and projected (0 or 1 per pixel), so ``velomatch evaluate DIR/design.toml`` places
 exactly the pattern the optimizer evaluated last.
@@ -166,19 +166,19 @@ def with_pattern(fr: FreeformRegion, rho: np.ndarray, layout, file_name: str,
 
 
 # ------------------------------------------------------------------------ grid
-def design_region(fr: FreeformRegion, layout) -> ff.DesignRegion:
+def density_patch(fr: FreeformRegion, layout) -> ff.DensityPatch:
     g = layout.grid
     xc = g.x_centres()
     inside = (xc >= fr.x_m[0]) & (xc <= fr.x_m[1])
     periodic = layout.pml_cells_x == 0 and bool(inside.all())
-    return ff.DesignRegion(fr.x_m[0], fr.x_m[1], fr.z_m[0], fr.z_m[1],
+    return ff.DensityPatch(fr.x_m[0], fr.x_m[1], fr.z_m[0], fr.z_m[1],
                            eps_solid=complex(fr.material.eps), eps_void=1.0 + 0j,
                            periodic_x=periodic)
 
 
 def region_cells(fr: FreeformRegion, layout) -> ff.RegionCells:
     """The design pixels on this layout's grid (ValueError if the region has none)."""
-    return ff.region_cells(design_region(fr, layout), layout.grid)
+    return ff.region_cells(density_patch(fr, layout), layout.grid)
 
 
 def resample(density: np.ndarray, pixel_m, origin_m, cells: ff.RegionCells, grid
@@ -206,7 +206,7 @@ def start_density(fr: FreeformRegion, layout, family_fill) -> np.ndarray:
 
 def physical_density(fr: FreeformRegion, layout, family_fill) -> np.ndarray:
     """What is evaluated: the spec's density binarized at 0.5 (beta = inf, no filter)."""
-    return np.asarray(ff.project(start_density(fr, layout, family_fill), math.inf))
+    return np.asarray(ff.threshold_projection(start_density(fr, layout, family_fill), math.inf))
 
 
 def place(fr: FreeformRegion, eps_x, eps_z, rho_bar, layout):

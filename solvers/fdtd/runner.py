@@ -19,7 +19,7 @@ x spans [x_min, x_min + period) with Bloch-periodic sides, or [x_min, x_min + si
 with PML (pml_m) added outside on both sides.  The PML and buffer are added outside
 the physical region; polygons that should continue into the PML (half-spaces) must
 extend beyond it.  The source-side buffer and PML are filled with the incidence medium
-regardless of the polygons.  The grid spacing is 1/resolution_per_um um, raised if
+regardless of the polygons.  The grid spacing is 1/cells_per_um um, raised if
 needed so that a period is a whole number of pixels; pixel edges fall on x_min and
 z_min, so pixel centres are at x_min + (i + 1/2) dx, z_min + (k + 1/2) dx.
 """
@@ -135,7 +135,7 @@ class FdtdProblem:
     bloch_kx: float | None = None
     polygons: tuple[FdtdPolygon, ...] = ()
     eps_background: complex = 1.0
-    resolution_per_um: float = 40.0
+    cells_per_um: float = 40.0
     lines: tuple[tuple[str, float], ...] = ()
     amplitude_V_per_m: float = 1.0
     whole_cell: bool = False
@@ -146,7 +146,7 @@ class FdtdProblem:
     def __post_init__(self):
         if (self.period_x_m is None) == (self.size_x_m is None):
             raise ValueError("give exactly one of period_x_m (Bloch x) and size_x_m (PML x)")
-        for name in ("size_z_m", "wavelength_m", "pml_m", "resolution_per_um", "steady_tol",
+        for name in ("size_z_m", "wavelength_m", "pml_m", "cells_per_um", "steady_tol",
                      "max_periods"):
             if not getattr(self, name) > 0:
                 raise ValueError(f"{name} must be positive, got {getattr(self, name)}")
@@ -242,7 +242,7 @@ class FdtdProblem:
                 for p in self.polygons
             ],
             "eps_background": [self.eps_background.real, self.eps_background.imag],
-            "resolution_per_um": float(self.resolution_per_um),
+            "cells_per_um": float(self.cells_per_um),
             "lines": [list(line) for line in self.lines],
             "amplitude_V_per_m": float(self.amplitude_V_per_m),
             "whole_cell": bool(self.whole_cell),
@@ -289,13 +289,13 @@ class FdtdCellFields:
 class FdtdResult:
     """Output of one worker run.
 
-    ``lines`` in the order requested; ``resolution_m`` the grid spacing; ``wall_s`` the
+    ``lines`` in the order requested; ``grid_step_m`` the grid spacing; ``wall_s`` the
     worker's own wall time (both runs); ``info`` the worker's diagnostics (convergence,
     calibration factors, handedness ratio, actual line positions, ...).
     """
 
     lines: tuple[FdtdLine, ...]
-    resolution_m: float
+    grid_step_m: float
     wall_s: float
     meep_version: str
     cell: FdtdCellFields | None = None
@@ -391,7 +391,7 @@ def run_fdtd(problem: FdtdProblem, *, timeout_s: float = 600.0,
                     if left <= 0:
                         raise FdtdWorkerError(
                             f"Meep worker exceeded its wall-time limit of {timeout_s:g} s "
-                            "(lower resolution_per_um, shrink the cell, or raise timeout_s)")
+                            "(lower cells_per_um, shrink the cell, or raise timeout_s)")
                     try:
                         line = q.get(timeout=min(left, 0.5))
                     except queue.Empty:
@@ -447,6 +447,6 @@ def _read_result(path: Path) -> FdtdResult:
         cell = None
         if meta["whole_cell"]:
             cell = FdtdCellFields(*(data["cell_" + c] for c in ("x", "z", "ex", "ez", "hy")))
-    return FdtdResult(lines=tuple(lines), resolution_m=float(meta["dx_m"]),
+    return FdtdResult(lines=tuple(lines), grid_step_m=float(meta["dx_m"]),
                       wall_s=float(meta["wall_s"]), meep_version=meta["meep_version"],
                       cell=cell, info=meta)

@@ -96,7 +96,7 @@ class _Layout:
         self.periodic = bool(spec["periodic"])
         size_x = spec["size_x_m"] / um
         size_z = spec["size_z_m"] / um
-        res = float(spec["resolution_per_um"])
+        res = float(spec["cells_per_um"])
         if self.periodic:
             # the period must be a whole number of pixels, or Meep's cell is not the period
             self.nx = max(1, int(math.ceil(size_x * res - 1e-9)))
@@ -440,7 +440,7 @@ def solve(spec: dict) -> tuple[dict, dict]:
         put("cell_", cell, out[-1])
     meta = {
         "meep_version": str(getattr(mp, "__version__", "unknown")),
-        "resolution_per_um": lay.res,
+        "cells_per_um": lay.res,
         "dx_m": lay.dx * um,
         "dt_s": dt * um / float(spec["c_m_per_s"]),
         "courant": courant,

@@ -123,7 +123,7 @@ def evaluate_timings():
         "sample": {"family": "membrane", "material": {"n": 2.0}, "thickness_nm": 120.0,
                    "pattern": "none"},
         "path": {"x_nm": 0.0},
-        "solver": {"method": "fdfd", "refine": False, "resolution_nm": 7.0},
+        "solver": {"method": "fdfd", "refine": False, "grid_step_nm": 7.0},
     }
     calls = []
     for _ in range(2):

@@ -41,11 +41,11 @@ def main() -> None:
     steps_nm = [20.0, 12.0, 8.0] if args.quick else [20.0, 16.0, 12.0, 10.0, 8.0, 6.0]
     spec = parse_spec(SPEC, source="benchmark")
     # warm-up (JAX compilation of the rasterizer, Meep start-up caches), not timed
-    crosscheck(spec, resolution_m=steps_nm[0] * 1e-9, max_wall_s=600.0)
+    crosscheck(spec, grid_step_m=steps_nm[0] * 1e-9, max_wall_s=600.0)
     rows = []
     for h in steps_nm:
         t0 = time.perf_counter()
-        cc = crosscheck(spec, resolution_m=h * 1e-9, max_wall_s=600.0)
+        cc = crosscheck(spec, grid_step_m=h * 1e-9, max_wall_s=600.0)
         exact = cc.exact_V
         rows.append({
             "step_nm": h,

@@ -90,7 +90,7 @@ def main(argv=None) -> dict:
     x_gap = 0.5 * dx  # a gap between teeth (pixel centre)
     tp = FdtdProblem(size_z_m=n_phys * dx, z_min_m=z_phys0, wavelength_m=lam, period_x_m=period,
                      pml_m=n_pml * dx, eps_incidence=eps_s, polygons=polys,
-                     resolution_per_um=UM / dx, lines=(("x", z_e), ("z", x_gap)))
+                     cells_per_um=UM / dx, lines=(("x", z_e), ("z", x_gap)))
     t0 = time.perf_counter()
     td = run_fdtd(tp)
     t_fdtd = time.perf_counter() - t0
@@ -100,8 +100,8 @@ def main(argv=None) -> dict:
     hy_fd = fd.sample_hy(vert.x, vert.z)
     q = omega / v
     x_first = float(path.x[0])
-    i_fd = complex(periodic_cell_integral(ex_fd, x_first, td.resolution_m, fd.bloch_kx, q))
-    i_td = complex(periodic_cell_integral(path.ex, x_first, td.resolution_m, fd.bloch_kx, q))
+    i_fd = complex(periodic_cell_integral(ex_fd, x_first, td.grid_step_m, fd.bloch_kx, q))
+    i_td = complex(periodic_cell_integral(path.ex, x_first, td.grid_step_m, fd.bloch_kx, q))
     out = {
         "period_nm": period * 1e9,
         "eps_silica": eps_s,

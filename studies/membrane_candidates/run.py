@@ -115,12 +115,12 @@ def _run(specs: list[Path], out: Path, quick: bool) -> dict:
     winner = ranking[0]["name"]
     print(f"cross-checking the winner {winner} with Meep", file=sys.stderr)
     try:
-        xc = crosscheck(load_spec(HERE / f"{winner}.toml"), resolution_m=CROSSCHECK_NM * 1e-9,
+        xc = crosscheck(load_spec(HERE / f"{winner}.toml"), grid_step_m=CROSSCHECK_NM * 1e-9,
                         tolerance=CROSSCHECK_TOL, max_wall_s=300.0)
         xj = crosscheck_json(xc)
         vio.write_json(out / "crosscheck.json", xj)
         exact = complex(xc.exact_V)
-        xcheck = {"candidate": winner, "resolution_nm": CROSSCHECK_NM,
+        xcheck = {"candidate": winner, "grid_step_nm": CROSSCHECK_NM,
                   "tolerance": CROSSCHECK_TOL,
                   "fdtd_vs_fdfd": xc.relative_difference, "agree": xc.agree,
                   "fdtd_vs_exact": abs(xc.integral_fdtd_V - exact) / abs(exact),

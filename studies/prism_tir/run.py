@@ -158,10 +158,10 @@ def _run(out: Path, quick: bool) -> dict:
     # 6. Meep cross-check of the nominal design
     print(f"cross-checking with Meep at {CROSSCHECK_NM:g} nm", file=sys.stderr)
     try:
-        xc = crosscheck(spec, resolution_m=CROSSCHECK_NM * 1e-9, tolerance=CROSSCHECK_TOL,
+        xc = crosscheck(spec, grid_step_m=CROSSCHECK_NM * 1e-9, tolerance=CROSSCHECK_TOL,
                         max_wall_s=300.0)
         exact = complex(xc.exact_V)
-        xcheck = {"resolution_nm": CROSSCHECK_NM, "tolerance": CROSSCHECK_TOL,
+        xcheck = {"grid_step_nm": CROSSCHECK_NM, "tolerance": CROSSCHECK_TOL,
                   "fdtd_vs_fdfd": xc.relative_difference, "agree": xc.agree,
                   "fdtd_vs_exact": abs(xc.integral_fdtd_V - exact) / abs(exact)}
     except MeepNotInstalledError as exc:
