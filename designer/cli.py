@@ -11,11 +11,8 @@ import argparse
 import os
 import sys
 
+from designer.cautions import SAFETY_NOTE
 from designer.errors import VelomatchError
-
-SAFETY_NOTE = ("Safety: the laser powers, beam voltages and fields these designs imply can "
-               "injure. Class-4 lasers, high voltage and X-rays in an electron column are "
-               "governed by your local laser-safety officer, local codes and licensed practice.")
 
 
 def _add_json(p: argparse.ArgumentParser) -> None:

@@ -107,14 +107,10 @@ def _coupling_text(result: dict) -> str:
 
 
 def _caution(peak_field_V_per_m: float) -> list[str]:
-    """A safety line for outputs that describe a real laser (fields above 1 MV/m)."""
-    if peak_field_V_per_m is None or peak_field_V_per_m < 1e6:
-        return []
-    from designer.cli import SAFETY_NOTE
+    """Safety lines for outputs that describe a real laser (designer.cautions)."""
+    from designer.cautions import caution_lines
 
-    return ["", "Caution: these fields come from an intense (typically class-4) laser and "
-            "can damage the sample; check the damage factor against your material's "
-            "threshold.", SAFETY_NOTE]
+    return caution_lines(peak_field_V_per_m)
 
 
 def run_evaluate(args) -> int:
@@ -195,6 +191,9 @@ def run_spectrum(args) -> int:
     if args.plot:
         spectrum.plot_spectrum(args.plot, result["energy_eV"], result["density_per_eV"], lines,
                                title=f"PINEM spectrum, |beta_c| = {result['beta_c_peak']:.3g}")
+    from designer.cautions import cautions
+
+    result["cautions"] = cautions(ev.peak_field_V_per_m)
     result["provenance"] = provenance(spec.sha256, solver=ev.solver,
                                       grid_step_m=ev.run.grid_step_m)
     strongest = sorted(zip(lines.orders, lines.probability), key=lambda t: -t[1])[:5]

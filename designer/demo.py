@@ -151,7 +151,7 @@ def study_main(argv, *, description: str, default_out: Path, quick_help: str, ru
     """
     import argparse
 
-    from designer.cli import SAFETY_NOTE
+    from designer.cautions import SAFETY_NOTE
 
     p = argparse.ArgumentParser(description=description)
     p.add_argument("--quick", action="store_true", help=quick_help)
@@ -479,7 +479,7 @@ def print_closing(out: Path, summary: dict) -> None:
 
 def demo_command(args) -> int:
     """``velomatch demo [--out DIR] [--overwrite]``: the quick grating study."""
-    from designer.cli import SAFETY_NOTE
+    from designer.cautions import SAFETY_NOTE
 
     out = prepare_study_dir(getattr(args, "out", None) or "demo-output",
                             overwrite=bool(getattr(args, "overwrite", False)))

@@ -450,6 +450,7 @@ def coupling_figures(ev: Evaluation) -> dict:
 
 def evaluation_json(ev: Evaluation) -> dict:
     """The full ``velomatch evaluate --json`` object (contract keys first)."""
+    from designer.cautions import cautions
     from designer.provenance import provenance
 
     spec = ev.spec
@@ -463,6 +464,7 @@ def evaluation_json(ev: Evaluation) -> dict:
                   "from": spec.laser.from_side},
         "sample": {"family": spec.family},
         "coupling": coupling_figures(ev),
+        "cautions": cautions(ev.peak_field_V_per_m),
         "provenance": provenance(spec.sha256, solver=ev.solver,
                                  grid_step_m=ev.run.grid_step_m),
     }

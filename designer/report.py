@@ -228,7 +228,7 @@ def _block_html(block: Block) -> str:
 
 def render_html(rep: Report) -> str:
     """The report as one HTML document (UTF-8, no external resources)."""
-    from designer.cli import SAFETY_NOTE
+    from designer.cautions import SAFETY_NOTE
 
     parts = ["<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
              '<meta name="viewport" content="width=device-width, initial-scale=1">',
