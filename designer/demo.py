@@ -421,7 +421,7 @@ def _grating_report(out: Path, s: dict, design_dir: Path) -> Path:
         images.append(rp.image(out / "crosscheck.png", "Field along the path: FDFD and Meep"))
     rep = rp.Report(
         f"Grating study: {sc['voltage_kV']:g} kV beam, {sc['wavelength_nm']:g} nm laser",
-        subtitle=f"{sc['material']} tooth grating, {sc['path_length_um']:g} um path"
+        subtitle=f"{sc['material']} tooth grating, {sc['path_length_um']:g} µm path"
                  + (" (quick version)" if s["quick"] else ""),
         sections=(rp.Section("Headline numbers", (
                       rp.Facts((("structure factor κ after optimization",
