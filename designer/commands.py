@@ -268,9 +268,6 @@ def run_spectrum(args) -> int:
     ev = evaluate(spec, refine=False, progress=_status)
     result = spectrum_of(ev)
     lines = result.pop("_lines")
-    if args.plot:
-        spectrum.plot_spectrum(args.plot, result["energy_eV"], result["density_per_eV"], lines,
-                               title=f"PINEM spectrum, |beta_c| = {result['beta_c_peak']:.3g}")
     from designer.cautions import cautions
     from designer.resolved import spectrum_notes
 
@@ -279,6 +276,13 @@ def run_spectrum(args) -> int:
         notes.append("Pulse averaging skipped: it needs both [laser] duration_fs and "
                      "[spectrum] electron_pulse_fs; the lines are those of the peak field.")
     result["notes"] = notes
+    if args.plot:
+        short = ["pulse averaging skipped (set [laser] duration_fs and [spectrum] "
+                 "electron_pulse_fs)"] if result["averaged_over"]["laser_duration_s"] is None \
+            else []
+        spectrum.plot_spectrum(args.plot, result["energy_eV"], result["density_per_eV"], lines,
+                               title=f"PINEM spectrum, |β_c| = {result['beta_c_peak']:.3g}",
+                               notes=short)
     result["cautions"] = cautions(ev.peak_field_V_per_m)
     result["provenance"] = provenance(spec.sha256, solver=ev.solver,
                                       grid_step_m=ev.run.grid_step_m)

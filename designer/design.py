@@ -745,11 +745,21 @@ def convergence_figure(result: DesignResult):
     cfg = result.problem.config
     fig = Figure(figsize=(6.4, 4.0))
     ax = fig.subplots()
+    from matplotlib.ticker import MaxNLocator
+
+    from designer.drawing import ELECTRON
+
     for st in result.starts:
         its = [r["iteration"] for r in st.history]
         ax.plot(its, [r["objective"] for r in st.history], marker=".",
                 label=f"start {st.index + 1}" + (" (best)" if st.index == result.best_start
                                                  else ""))
+    best = result.best_record
+    if best is not None and "iteration" in best:
+        ax.plot([best["iteration"]], [best["objective"]], marker="*", ms=14, ls="none",
+                color=ELECTRON, zorder=5,
+                label=f"best: iteration {best['iteration']}, {best['objective']:.4g}")
+    ax.xaxis.set_major_locator(MaxNLocator(integer=True))
     unit = {"coupling": "|beta_c|/E0 (m/V)", "structure_factor": "G/E0",
             "damage_factor": "G/E_max"}[cfg.objective]
     agg = f" ({cfg.aggregate} over {len(result.problem.models)} scenarios)" \

@@ -512,7 +512,7 @@ def write_preview(path: str | os.PathLike, drawing: Drawing, view: geo.TopView,
     from matplotlib.collections import PolyCollection
 
     fig, ax = plt.subplots(figsize=(7, 5))
-    colours = {"pattern": "#2f6fb0", "frame": "#777777", "marks": "#b05a2f", "label": "#444444"}
+    colours = {"pattern": "#5b6f82", "frame": "#9aa5b0", "marks": "#8a7a5a", "label": "#444444"}
     for purpose, layer, datatype, polys in drawing.shapes:
         if polys:
             ax.add_collection(PolyCollection([p * 1e6 for p in polys], closed=True,
@@ -521,13 +521,15 @@ def write_preview(path: str | os.PathLike, drawing: Drawing, view: geo.TopView,
     x0, y0, x1, y1 = (v * 1e6 for v in view.frame)
     ax.plot([x0, x1, x1, x0, x0], [y0, y0, y1, y1, y0], ls=":", lw=0.8, color="k",
             label="pattern frame")
+    from designer.drawing import ELECTRON
+
     if view.crossing_x_m is None:
         ax.annotate("", xy=(x1, view.path_y_m * 1e6), xytext=(x0, view.path_y_m * 1e6),
-                    arrowprops=dict(arrowstyle="->", color="#c0392b", lw=1.2))
-        ax.plot([], [], color="#c0392b", label="electron path")
+                    arrowprops=dict(arrowstyle="-|>", color=ELECTRON, lw=2.0))
+        ax.plot([], [], color=ELECTRON, lw=2.0, label="electron path")
     else:
-        ax.plot([view.crossing_x_m * 1e6], [0.0], marker="o", ms=6, mfc="none",
-                color="#c0392b", ls="none", label="electron crosses the film")
+        ax.plot([view.crossing_x_m * 1e6], [0.0], marker="o", ms=7, mfc="none", mew=2.0,
+                color=ELECTRON, ls="none", label="electron crosses the film")
     bx = geo.bounding_box(drawing.polygons() + [geo.rectangle(*view.frame)])
     pad = 0.05 * max(bx[2] - bx[0], bx[3] - bx[1]) * 1e6
     ax.set_xlim(bx[0] * 1e6 - pad, bx[2] * 1e6 + pad)

@@ -29,7 +29,6 @@ from dataclasses import dataclass
 import jax.numpy as jnp
 import numpy as np
 
-from designer import drawing
 from designer.errors import SpecError
 from designer.families import base
 from designer.families import region as freeform_region
@@ -448,9 +447,12 @@ def features(p: GratingParams) -> list[Feature]:
     return out
 
 
-def draw(ax, p: GratingParams, ctx: SampleContext, layout: SimulationLayout):
-    """Picture of the sample (geometry, electron path, laser, scale bar, legend)."""
+def draw(ax, p: GratingParams, ctx: SampleContext, layout: SimulationLayout, **options):
+    """Picture of the sample (geometry, electron path, laser, scale bar, legend);
+    ``options`` go to :func:`designer.drawing.draw_sample` (e.g. ``exact=True``)."""
+    from designer import drawing
+
     title = (f"{'double' if p.sides == 2 else 'single'}-sided grating, period "
              f"{p.period_m * 1e9:.4g} nm")
     return drawing.draw_sample(ax, polygons(p, ctx, layout), layout, title=title,
-                               periods=3)
+                               **{"periods": 3, **options})

@@ -20,7 +20,6 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from designer import drawing
 from designer.errors import SpecError
 from designer.families import base
 from designer.families import region as freeform_region
@@ -380,10 +379,13 @@ def features(p: MembraneParams) -> list[Feature]:
     return out
 
 
-def draw(ax, p: MembraneParams, ctx: SampleContext, layout: SimulationLayout):
+def draw(ax, p: MembraneParams, ctx: SampleContext, layout: SimulationLayout, **options):
+    """Picture of the sample; ``options`` go to :func:`designer.drawing.draw_sample`."""
+    from designer import drawing
+
     what = "unpatterned membrane" if p.pattern == "none" else \
         f"membrane with {len(p.slit_widths_m)} slit(s) per {p.period_m * 1e9:.4g} nm"
     periods = 3 if p.pattern == "slits" else 1
     return drawing.draw_sample(ax, polygons(p, ctx, layout), layout,
                                title=f"{what}, {p.thickness_m * 1e9:.4g} nm thick",
-                               periods=periods)
+                               **{"periods": periods, **options})

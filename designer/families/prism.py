@@ -22,7 +22,6 @@ import dataclasses
 import math
 from dataclasses import dataclass
 
-from designer import drawing
 from designer.errors import SpecError
 from designer.families import base
 from designer.families.base import (
@@ -240,6 +239,10 @@ def features(p: PrismParams) -> list[Feature]:
     return out
 
 
-def draw(ax, p: PrismParams, ctx: SampleContext, layout: SimulationLayout):
+def draw(ax, p: PrismParams, ctx: SampleContext, layout: SimulationLayout, **options):
+    """Picture of the sample; ``options`` go to :func:`designer.drawing.draw_sample`."""
+    from designer import drawing
+
     title = f"prism surface ({p.material.name}), {len(p.layers)} layer(s)"
-    return drawing.draw_sample(ax, polygons(p, ctx, layout), layout, title=title, periods=1)
+    return drawing.draw_sample(ax, polygons(p, ctx, layout), layout, title=title,
+                               **{"periods": 1, **options})
