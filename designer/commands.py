@@ -81,6 +81,22 @@ def _status(message: str) -> None:
     print(f"  {message}", file=sys.stderr, flush=True)
 
 
+def _rules_text(result: dict) -> list[str]:
+    """The plane's assumption and the design-rule verdict (the check export applies)."""
+    out = []
+    plane = result.get("plane") or {}
+    if plane.get("assumption"):
+        out.append(f"  plane                     wafer ({plane['assumption']})")
+    rules = result.get("design_rules")
+    if rules is not None:
+        head = "clean" if rules["clean"] else f"{len(rules['violations'])} violation(s)"
+        if rules["not_checked"]:
+            head += " (not checked: " + "; ".join(rules["not_checked"]) + ")"
+        out.append(f"  design-rule check         {head}")
+        out += [f"    {v['message']}" for v in rules["violations"][:10]]
+    return out
+
+
 def _coupling_text(result: dict) -> str:
     c = result["coupling"]
     lines = [f"sample: {result['sample']['family']}  "
@@ -102,6 +118,7 @@ def _coupling_text(result: dict) -> str:
         lines.append(f"  damage factor G/E_max     {c['damage_factor']:.4g}")
     err = c["relative_error_estimate"]
     lines.append("  relative error estimate   " + ("n/a" if err is None else f"{err:.2%}"))
+    lines.extend(_rules_text(result))
     lines.extend(_caution(result["laser"]["peak_field_V_per_m"]))
     return "\n".join(lines)
 

@@ -740,6 +740,29 @@ def freeform_findings(spec, params, grid_step_m: float | None = None) -> list[Fi
     return out
 
 
+def _outside_region(features, fr) -> list[Feature]:
+    """The family's sizes that a free-form region leaves standing: solids and gaps
+    inside the region are the pattern's (checked pixel by pixel); heights keep their
+    etch-depth rule but lose the aspect ratio of a tooth that is no longer there."""
+    boxes = [(fr.x_m, fr.z_m)]
+    if fr.upper is not None:
+        boxes.append((fr.x_m, (fr.mirror_z_m - fr.z_m[1], fr.mirror_z_m - fr.z_m[0])))
+    tol = 1e-12
+
+    def inside(loc):
+        return any(x[0] - tol <= loc[0] <= x[1] + tol and z[0] - tol <= loc[1] <= z[1] + tol
+                   for x, z in boxes)
+
+    out = []
+    for f in features:
+        if f.kind in ("solid", "gap") and inside(f.location):
+            continue
+        if f.kind == "height" and inside(f.location):
+            f = Feature("height", f.size_m, f.location, f.description)
+        out.append(f)
+    return out
+
+
 def check_design(spec, params=None, *, grid_step_m: float | None = None,
                  layout: bool = True) -> RuleVerdict:
     """The design-rule verdict of a sample: the one check that ``design``, ``evaluate``,
@@ -764,9 +787,12 @@ def check_design(spec, params=None, *, grid_step_m: float | None = None,
     plane_info = getattr(p, "plane", None)
     where = "wafer plane" if plane_info is not None and plane_info.plane == "wafer" \
         else "cross-section"
-    out = [_from_violation(where, v) for v in design_rule_check(family.features(p), rules)]
-    names = [p.material.name]
     fr = getattr(p, "freeform", None)
+    features = family.features(p)
+    if fr is not None:
+        features = _outside_region(features, fr)
+    out = [_from_violation(where, v) for v in design_rule_check(features, rules)]
+    names = [p.material.name]
     if fr is not None:
         names.append(fr.material.name)
     out += [_from_violation(where, v) for v in check_materials(names, rules)]
