@@ -481,7 +481,7 @@ def layout_rule_check(view: geo.TopView, s: LayoutSettings, rules) -> list[Findi
                                          "opening")):
             for part in find(v, s.tone, limit):
                 out.append(Finding("layout", rule, part.size_m, limit, part.center_m,
-                                   f"{word}{level} of {part.area_m2 * 1e12:.4g} um^2"))
+                                   f"{word}{level} of {part.area_m2 * 1e12:.4g} µm²"))
     x0, y0, x1, y1 = view.frame
     extent = max(x1 - x0, y1 - y0)
     if extent > rules.write_field_m * (1 + 1e-9):
