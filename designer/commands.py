@@ -144,6 +144,22 @@ def _status(message: str) -> None:
     print(f"  {message}", file=sys.stderr, flush=True)
 
 
+def _rules_text(result: dict) -> list[str]:
+    """The plane's assumption and the design-rule verdict (the check export applies)."""
+    out = []
+    plane = result.get("plane") or {}
+    if plane.get("assumption"):
+        out.append(f"  plane                     wafer ({plane['assumption']})")
+    rules = result.get("design_rules")
+    if rules is not None:
+        head = "clean" if rules["clean"] else f"{len(rules['violations'])} violation(s)"
+        if rules["not_checked"]:
+            head += " (not checked: " + "; ".join(rules["not_checked"]) + ")"
+        out.append(f"  design-rule check         {head}")
+        out += [f"    {v['message']}" for v in rules["violations"][:10]]
+    return out
+
+
 def _coupling_text(result: dict) -> str:
     """The ``evaluate`` result for people: set-up, sample as evaluated, figures, notes."""
     from designer import units
@@ -181,6 +197,7 @@ def _coupling_text(result: dict) -> str:
     lines.extend(sample_lines(result["sample"]))
     lines.append("coupling")
     lines.extend(f"  {k:<{width}}  {v}" for k, v in figures)
+    lines.extend(_rules_text(result))
     for note in result.get("notes", []):
         lines.extend(["", "Note: " + note])
     lines.extend(_caution(las["peak_field_V_per_m"]))

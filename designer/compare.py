@@ -401,6 +401,7 @@ def _assemble(candidates, footing, scans) -> dict:
             "angle_deg": c.angle_deg, "spec": c.raw,
             "coupling": result["coupling"], "provenance": result.get("provenance"),
             "peak_field_V_per_m": result.get("laser", {}).get("peak_field_V_per_m"),
+            "design_rules": result.get("design_rules"),
             "tolerance_10nm": tolerance,
             "angular_bandwidth_deg": bands["angle"],
             "spectral_bandwidth_nm": bands["wavelength"],
@@ -447,6 +448,14 @@ def _tol_text(tol: dict) -> str:
            f"{tol['worst_change_nm']:+g} nm)"
 
 
+def _rules_cell(entry: dict) -> str:
+    """The candidate's design-rule verdict (the check export applies)."""
+    rules = entry.get("design_rules")
+    if rules is None:
+        return "n/a"
+    return "clean" if rules["clean"] else f"{len(rules['violations'])} violation(s)"
+
+
 def ranking_table(data: dict) -> rp.Table:
     rows, ids = [], []
     for e in data["candidates"]:
@@ -454,11 +463,12 @@ def ranking_table(data: dict) -> rp.Table:
         rows.append((str(e["rank"]), e["name"], e["family"], headline(e),
                      rp.fmt(c.get("beta_c_per_field_m_per_V")), rp.fmt(c.get("structure_factor")),
                      rp.fmt(c.get("damage_factor")), _tol_text(e["tolerance_10nm"]),
-                     _bw_text(e["angular_bandwidth_deg"]), _bw_text(e["spectral_bandwidth_nm"])))
+                     _bw_text(e["angular_bandwidth_deg"]), _bw_text(e["spectral_bandwidth_nm"]),
+                     _rules_cell(e)))
         ids.append("candidate-" + "".join(ch if ch.isalnum() else "-" for ch in e["name"]))
     return rp.Table(columns=("rank", "candidate", "family", "|β_c|", "|β_c| per V/m", "κ",
                              "damage factor", "worst ±10 nm", "angular width",
-                             "spectral width"),
+                             "spectral width", "design rules"),
                     rows=tuple(rows), highlight=(0,), row_ids=tuple(ids),
                     caption="Ranked on |β_c| per unit incident field. Widths: full range "
                             "where |β_c| stays above 1/√2 of its nominal value.")

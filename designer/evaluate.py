@@ -493,9 +493,27 @@ def evaluation_json(ev: Evaluation) -> dict:
         "coupling": coupling_figures(ev),
         "cautions": cautions(ev.peak_field_V_per_m),
         "notes": explanations(ev),
+        "plane": _plane_facts(spec),
+        "design_rules": _design_rules(spec, ev),
         "provenance": provenance(spec.sha256, solver=ev.solver,
                                  grid_step_m=ev.run.grid_step_m),
     }
+
+
+def _plane_facts(spec: Spec) -> dict:
+    from designer.families import region
+
+    info = getattr(spec.sample, "plane", None) or region.PlaneInfo()
+    return region.plane_facts(info, spec.context)
+
+
+def _design_rules(spec: Spec, ev: Evaluation) -> dict:
+    """The design-rule verdict (designer.fabrication.check_design), on the grid this
+    evaluation used for a free-form pattern."""
+    from designer.fabrication import check_design
+
+    step = ev.run.grid_step_m if getattr(spec.sample, "freeform", None) is not None else None
+    return check_design(spec, grid_step_m=step).to_dict()
 
 
 def evaluate_raw(raw: dict, *, source: str = "<spec>", base_dir=None, **options) -> dict:

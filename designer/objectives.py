@@ -536,13 +536,22 @@ class DensityChain:
     periodic_x: bool
     radius_m: float | None = None
     delta_eta: float | None = None
+    # design variables -> region pattern (designer.freeform.Parametrization: column
+    # densities per etch step, mirrored upper regions); None: one variable per cell
+    param: object = None
 
     def filtered(self, rho):
         from designer import freeform as ff
 
         if self.radius_m is None:
             return jnp.asarray(rho, dtype=float)
+        if self.param is not None:
+            return self.param.filter(rho, self.radius_m, self.dx, self.dz,
+                                     periodic_x=self.periodic_x)
         return ff.density_filter(rho, self.radius_m, self.dx, self.dz, periodic_x=self.periodic_x)
+
+    def _expand(self, a):
+        return a if self.param is None else self.param.expand(a)
 
     def designs(self, rho, beta):
         """(1 or 3, nx, nz) projected designs (eroded, nominal, dilated when robust)."""
@@ -550,14 +559,14 @@ class DensityChain:
 
         rt = self.filtered(rho)
         if self.delta_eta is None:
-            return ff.threshold_projection(rt, beta)[None]
-        return ff.robust_triple(rt, beta, self.delta_eta)
+            return self._expand(ff.threshold_projection(rt, beta))[None]
+        return jnp.stack([self._expand(d) for d in ff.robust_triple(rt, beta, self.delta_eta)])
 
     def binarized(self, rho) -> np.ndarray:
         """The nominal design at ``beta = inf`` (0 or 1 per pixel): what is fabricated."""
         from designer import freeform as ff
 
-        return np.asarray(ff.threshold_projection(self.filtered(rho), math.inf))
+        return np.asarray(self._expand(ff.threshold_projection(self.filtered(rho), math.inf)))
 
 
 def _density_objective(models, objective, aggregate, n_keys, shape, designs_of):
