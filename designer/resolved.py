@@ -12,6 +12,8 @@ from __future__ import annotations
 import dataclasses
 import math
 
+import numpy as np
+
 from designer import units
 from designer.families.base import MaterialRef, decay_length
 
@@ -26,6 +28,11 @@ def _material(ref: MaterialRef) -> dict:
 def _value(name: str, value):
     if isinstance(value, MaterialRef):
         return name, _material(value)
+    if dataclasses.is_dataclass(value) and not isinstance(value, type):
+        return name, dict(_value(f.name, getattr(value, f.name))
+                          for f in dataclasses.fields(value) if f.name not in _SKIP)
+    if isinstance(value, np.ndarray):
+        return name, f"array of shape {value.shape}"
     if name.endswith("_rad") and isinstance(value, (int, float)):
         return name[:-4] + "_deg", math.degrees(value)
     if isinstance(value, tuple):
@@ -36,7 +43,11 @@ def _value(name: str, value):
             else:
                 items.append(item)
         return name, items
-    return name, value
+    if value is None or isinstance(value, (bool, int, float, str)):
+        return name, value
+    if isinstance(value, (list, dict)):
+        return name, value
+    return name, str(value)
 
 
 def _given(ctx, key: str) -> bool:
@@ -148,6 +159,10 @@ def sample_items(block: dict) -> list[tuple[str, str]]:
             items.append(("field decay length (1/e)", units.length(value)))
         elif value is None or (isinstance(value, list) and not value):
             continue
+        elif isinstance(value, dict):
+            parts = [_text(k, v) if k == key else f"{k.replace('_', ' ')} {_text(k, v)}"
+                     for k, v in value.items() if v is not None]
+            items.append((_LABELS.get(key, key.replace("_", " ")), ", ".join(parts)))
         elif key == "freeform_region":
             items.append(("free-form region", "yes"))
         else:
