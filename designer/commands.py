@@ -276,39 +276,52 @@ def spectrum_of(ev) -> dict:
             "_lines": lines}
 
 
-def run_spectrum(args) -> int:
-    from designer import spectrum
-    from designer.evaluate import evaluate
-    from designer.spec import load_spec
-
-    spec = load_spec(args.spec)
-    ev = evaluate(spec, refine=False, progress=_status)
-    result = spectrum_of(ev)
-    lines = result.pop("_lines")
+def spectrum_result(ev) -> tuple[dict, object]:
+    """The ``spectrum --json`` object of an evaluation (notes, cautions, provenance
+    included) and the line spectrum behind it (for the picture)."""
     from designer.cautions import cautions
     from designer.resolved import spectrum_notes
 
+    result = spectrum_of(ev)
+    lines = result.pop("_lines")
     notes = spectrum_notes(ev)
     if result["averaged_over"]["laser_duration_s"] is None:
         notes.append("Pulse averaging skipped: it needs both [laser] duration_fs and "
                      "[spectrum] electron_pulse_fs; the lines are those of the peak field.")
     result["notes"] = notes
-    if args.plot:
-        short = ["pulse averaging skipped (set [laser] duration_fs and [spectrum] "
-                 "electron_pulse_fs)"] if result["averaged_over"]["laser_duration_s"] is None \
-            else []
-        spectrum.plot_spectrum(args.plot, result["energy_eV"], result["density_per_eV"], lines,
-                               title=f"PINEM spectrum, |β_c| = {result['beta_c_peak']:.3g}",
-                               notes=short)
     result["cautions"] = cautions(ev.peak_field_V_per_m)
-    result["provenance"] = provenance(spec.sha256, solver=ev.solver,
+    result["provenance"] = provenance(ev.spec.sha256, solver=ev.solver,
                                       grid_step_m=ev.run.grid_step_m)
+    return result, lines
+
+
+def spectrum_picture(path, result: dict, lines) -> None:
+    """Write the spectrum picture of a :func:`spectrum_result`."""
+    from designer import spectrum
+
+    short = ["pulse averaging skipped (set [laser] duration_fs and [spectrum] "
+             "electron_pulse_fs)"] if result["averaged_over"]["laser_duration_s"] is None \
+        else []
+    spectrum.plot_spectrum(path, result["energy_eV"], result["density_per_eV"], lines,
+                           title=f"PINEM spectrum, |β_c| = {result['beta_c_peak']:.3g}",
+                           notes=short)
+
+
+def run_spectrum(args) -> int:
+    from designer.evaluate import evaluate
+    from designer.spec import load_spec
+
+    spec = load_spec(args.spec)
+    ev = evaluate(spec, refine=False, progress=_status)
+    result, lines = spectrum_result(ev)
+    if args.plot:
+        spectrum_picture(args.plot, result, lines)
     strongest = sorted(zip(lines.orders, lines.probability), key=lambda t: -t[1])[:5]
     text = [f"PINEM spectrum: |beta_c| = {result['beta_c_peak']:.4g}, "
             f"photon energy {result['photon_energy_eV']:.4g} eV, "
             f"zero-loss width {spec.spectrum.zlp_fwhm_eV:g} eV",
             "  strongest lines: " + ", ".join(f"l={int(o)}: {p:.3g}" for o, p in strongest)]
-    for note in notes:
+    for note in result["notes"]:
         text.extend(["", "Note: " + note])
     text.extend(_caution(ev.peak_field_V_per_m))
     _emit(args, result, "\n".join(text))
