@@ -35,7 +35,10 @@ import tempfile
 from pathlib import Path
 from typing import Any, Iterable
 
+from designer.runtime import configure_jax_cache
 from designer.spec import Spec
+
+configure_jax_cache()
 
 __all__ = ["load_spec", "build_spec", "with_values", "evaluate", "evaluation", "figure",
            "spectrum", "sweep", "compare", "design", "export", "material_catalogue"]

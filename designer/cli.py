@@ -125,6 +125,9 @@ def main(argv: list[str] | None = None) -> int:
     if args.command is None:
         parser.print_help()
         return 0
+    from designer.runtime import configure_jax_cache
+
+    configure_jax_cache()
     from designer import commands
 
     handler = getattr(commands, "run_" + args.command)

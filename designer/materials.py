@@ -32,7 +32,6 @@ from typing import Any
 
 import numpy as np
 from scipy import constants as const
-from scipy.interpolate import PchipInterpolator
 
 _DATA_DIR = Path(__file__).resolve().parent / "data"
 _UM = 1e-6
@@ -201,6 +200,8 @@ class Tabulated:
         lam_c = np.clip(lam, x[0], x[-1])
         if self.interpolation == "linear" or x.size == 2:
             return np.interp(lam_c, x, y)
+        from scipy.interpolate import PchipInterpolator   # only tables need it (start-up)
+
         return PchipInterpolator(x, y)(lam_c)
 
     def eps(self, lam):

@@ -5,9 +5,11 @@ at 35° (exact layer-stack solver); ``evaluate`` of the 30 kV fused-silica grati
 ``studies/grating_30kV`` (FDFD, two grids for the error estimate).  Each command runs
 as its own process.  The "first" run starts with an empty JAX compilation cache (a
 fresh ``VELOMATCH_CACHE_DIR``), the "second" run reuses the cache the first one filled,
-as a user's second command would.  Also reports the time to import the package alone.
+as a user's second command would; "no_cache" runs with the cache switched off
+(``VELOMATCH_CACHE_DIR=off``: every process compiles again, as before the cache
+existed).  Also reports the time to import the package alone.
 
-    python studies/benchmarks/startup.py             # about half a minute on 2 cores
+    python studies/benchmarks/startup.py             # about a minute on 2 cores
     python studies/benchmarks/startup.py --repeats 3
 
 Prints one JSON object (seconds; wall clock; median over the repeats).
@@ -77,12 +79,14 @@ def main() -> None:
         }
         result = {"unit": "s", "repeats": args.repeats}
         for name, cmd in commands.items():
-            firsts, seconds = [], []
+            off, firsts, seconds = [], [], []
             for r in range(args.repeats):
+                off.append(_timed(cmd, dict(os.environ, VELOMATCH_CACHE_DIR="off")))
                 env = dict(os.environ, VELOMATCH_CACHE_DIR=os.path.join(tmp, f"cache{name}{r}"))
                 firsts.append(_timed(cmd, env))
                 seconds.append(_timed(cmd, env))
-            result[name] = {"first_run": round(statistics.median(firsts), 3),
+            result[name] = {"no_cache": round(statistics.median(off), 3),
+                            "first_run": round(statistics.median(firsts), 3),
                             "second_run": round(statistics.median(seconds), 3)}
     print(json.dumps(result))
 
