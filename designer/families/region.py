@@ -313,23 +313,39 @@ def density_patch(fr: FreeformRegion, layout) -> ff.DensityPatch:
                            periodic_x=periodic)
 
 
+def _rows(z_lo: float, z_hi: float, grid) -> tuple[int, int]:
+    """Grid rows ``[k0, k1)`` that overlap ``[z_lo, z_hi]`` (rounded outward to cell
+    edges, so no sliver of the family's pattern is left between region and edge)."""
+    k0 = int(math.floor((z_lo - grid.z0) / grid.dz + 1e-6))
+    k1 = int(math.ceil((z_hi - grid.z0) / grid.dz - 1e-6))
+    return max(k0, 0), min(max(k1, k0 + 1), grid.nz)
+
+
+def _all_parts(fr: FreeformRegion, layout) -> list[ff.RegionCells]:
+    g = layout.grid
+    xcells = ff.region_cells(density_patch(fr, layout), g)    # x: cell centres inside
+    spans = [_rows(*fr.z_m, g)]
+    if fr.upper is not None:
+        spans.append(_rows(fr.mirror_z_m - fr.z_m[1], fr.mirror_z_m - fr.z_m[0], g))
+        # the same number of rows on both sides (mirrored row for row), grown away
+        # from the channel between them
+        n = max(b - a for a, b in spans)
+        spans = [(spans[0][1] - n, spans[0][1]), (spans[1][0], spans[1][0] + n)]
+        if spans[0][0] < 0 or spans[1][1] > g.nz:
+            raise ValueError("the free-form regions do not fit on the grid")
+    return [ff.RegionCells(xcells.i0, xcells.i1, a, b, xcells.periodic_x) for a, b in spans]
+
+
 def region_cells(fr: FreeformRegion, layout) -> ff.RegionCells:
-    """The design pixels on this layout's grid (ValueError if the region has none)."""
-    return ff.region_cells(density_patch(fr, layout), layout.grid)
+    """The design pixels of the (lower) region on this layout's grid: the cells whose
+    centres lie inside along x, and every row the region overlaps along z (ValueError
+    if the region has none)."""
+    return _all_parts(fr, layout)[0]
 
 
 def parts(fr: FreeformRegion, layout) -> list[ff.RegionCells]:
     """The region's cell blocks: the region, then the upper region (same shape) if any."""
-    lower = region_cells(fr, layout)
-    if fr.upper is None:
-        return [lower]
-    g = layout.grid
-    up = dataclasses.replace(fr, z_m=(fr.mirror_z_m - fr.z_m[1], fr.mirror_z_m - fr.z_m[0]))
-    cells = region_cells(up, layout)
-    # the same number of rows as the lower region (mirrored row for row)
-    k0 = min(cells.k0, g.nz - lower.shape[1])
-    return [lower, ff.RegionCells(cells.i0, cells.i1, k0, k0 + lower.shape[1],
-                                  cells.periodic_x)]
+    return _all_parts(fr, layout)
 
 
 def pattern_shape(fr: FreeformRegion, layout) -> tuple[int, int]:
