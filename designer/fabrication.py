@@ -731,6 +731,14 @@ def freeform_findings(spec, params, grid_step_m: float | None = None) -> list[Fi
             for v in column_run_violations(slab[:, 0], g.dx, x0, z_mid, spec.fabrication,
                                            periodic=cells.periodic_x, what=step):
                 out.append(_from_violation("cross-section", v))
+        if spec.family == "membrane":
+            z_lo, z_hi = z0, z0 + cells.shape[1] * g.dz
+            if fr.etch_steps != 1 or z_lo > 0.5 * g.dz or \
+                    z_hi < params.thickness_m - 0.5 * g.dz:
+                out.append(Finding(
+                    "cross-section", "region", math.nan, math.nan, (x0, z0),
+                    f"free-form {name} of a membrane: slits are etched through the film "
+                    "in one step, so the region must span the film with etch_steps = 1"))
         if not cells.periodic_x:
             out.append(Finding(
                 "cross-section", "region", math.nan, math.nan, (x0, z0),
