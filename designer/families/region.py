@@ -470,8 +470,13 @@ def polygons(fr: FreeformRegion, layout, family_polygons: list[Polygon], rho_phy
     boxes = []
     for cells in ps:
         x0, z0 = part_origin(cells, layout)
-        boxes.append(rectangle(x0, z0, x0 + cells.shape[0] * g.dx,
-                               z0 + cells.shape[1] * g.dz) * 1e9)
+        x1 = x0 + cells.shape[0] * g.dx
+        if cells.periodic_x:
+            # the region replaces the family's pattern in every period: cut the images
+            # of its pieces outside the cell too (they would come back when the cell
+            # is repeated)
+            x0, x1 = x0 - 4 * g.size_x, x1 + 4 * g.size_x
+        boxes.append(rectangle(x0, z0, x1, z0 + cells.shape[1] * g.dz) * 1e9)
     out = []
     for poly in family_polygons:
         for piece in gdstk.boolean([np.asarray(poly.vertices_m) * 1e9], boxes, "not",
@@ -494,3 +499,75 @@ def check_path_clear(fr: FreeformRegion, z_electron: float, ctx: SampleContext) 
                             f"the free-form region (z = {lo * 1e9:.4g} .. "
                             f"{hi * 1e9:.4g} nm) contains the electron's path at "
                             f"z = {z_electron * 1e9:.4g} nm", [v * 1e9 for v in fr.z_m])
+
+
+def snap_to_rules(fr: FreeformRegion, layout, pattern, rules) -> np.ndarray:
+    """The binarized pattern with the parts that break the minimum feature and gap
+    removed: morphological opening (solid) and closing (void) with a rectangle of
+    ``ceil(min_feature / pixel)`` (``ceil(min_gap / pixel)``) pixels, repeated until
+    nothing changes (at most four rounds).
+
+    Wafer plane: 2D, on the whole cell with the family's material around the region
+    (what the drawn layout holds), periodic along x.  Cross-section plane: along x only,
+    on each etch step's row of columns (lithography sets the lateral sizes; a slab's
+    thickness is a deposition, not a lithography, rule).  The opening of a rectilinear
+    pixel set by a k x k square keeps exactly the pixels covered by some k x k square
+    inside it, the criterion of the layout check (designer.layout.thin_parts); J. Serra,
+    *Image Analysis and Mathematical Morphology* (1982) -- from memory.
+    """
+    from scipy import ndimage
+
+    pattern = np.asarray(pattern, dtype=float) > 0.5
+    g = layout.grid
+    kx_f = int(math.ceil(rules.min_feature_m / g.dx - 1e-6))
+    kx_g = int(math.ceil(rules.min_gap_m / g.dx - 1e-6))
+    if max(kx_f, kx_g) <= 1:
+        return pattern.astype(float)
+    ps = parts(fr, layout)
+    periodic = ps[0].periodic_x
+
+    def morph(a, size, opening):
+        if size[0] <= 1 and size[1] <= 1:
+            return a
+        px, pz = size[0], size[1]
+        big = np.pad(a, ((px, px), (0, 0)), mode="wrap" if periodic else "edge")
+        big = np.pad(big, ((0, 0), (pz, pz)), mode="edge")
+        st = np.ones(size, dtype=bool)
+        op = ndimage.binary_opening if opening else ndimage.binary_closing
+        return op(big, structure=st)[px:px + a.shape[0], pz:pz + a.shape[1]]
+
+    if fr.plane == "wafer":
+        kz_f = int(math.ceil(rules.min_feature_m / g.dz - 1e-6))
+        kz_g = int(math.ceil(rules.min_gap_m / g.dz - 1e-6))
+        n = layout.pml_cells_z
+        base = np.asarray(layout.material_mask, dtype=bool).copy()
+        full = base.copy()
+        for cells, block in zip(ps, split(fr, layout, pattern)):
+            full[cells.i0:cells.i1, cells.k0:cells.k1] = block
+        inside = np.zeros_like(base)
+        for c in ps:
+            inside[c.i0:c.i1, c.k0:c.k1] = True
+        for _ in range(4):
+            before = full.copy()
+            inner = full[:, n:g.nz - n]
+            inner = morph(inner, (kx_f, kz_f), True)
+            inner = morph(inner, (kx_g, kz_g), False)
+            full[:, n:g.nz - n] = np.where(inside[:, n:g.nz - n], inner,
+                                           before[:, n:g.nz - n])
+            if (full == before).all():
+                break
+        return np.concatenate([full[c.i0:c.i1, c.k0:c.k1] for c in ps], axis=1).astype(float)
+    out = []
+    for block in split(fr, layout, pattern):
+        block = block.copy()
+        for a, b in slab_rows(fr, layout):
+            row = block[:, a:b].mean(axis=1) > 0.5
+            for _ in range(4):
+                before = row.copy()
+                row = morph(row[:, None], (kx_f, 1), True)[:, 0]
+                row = morph(row[:, None], (kx_g, 1), False)[:, 0]
+                if (row == before).all():
+                    break
+            block[:, a:b] = row[:, None]
+        out.append(block)
+    return np.concatenate(out, axis=1).astype(float)
