@@ -400,6 +400,7 @@ def _assemble(candidates, footing, scans) -> dict:
             "name": c.name, "source": c.source, "family": c.family,
             "angle_deg": c.angle_deg, "spec": c.raw,
             "coupling": result["coupling"], "provenance": result.get("provenance"),
+            "peak_field_V_per_m": result.get("laser", {}).get("peak_field_V_per_m"),
             "design_rules": result.get("design_rules"),
             "tolerance_10nm": tolerance,
             "angular_bandwidth_deg": bands["angle"],
@@ -409,7 +410,11 @@ def _assemble(candidates, footing, scans) -> dict:
                    key=lambda k: -(entries[k]["coupling"].get("beta_c_per_field_m_per_V") or 0.0))
     for rank, k in enumerate(order, start=1):
         entries[k]["rank"] = rank
-    return {"footing": footing, "ranking": [entries[k]["name"] for k in order],
+    from designer.cautions import cautions
+
+    fields = [e["peak_field_V_per_m"] for e in entries if e["peak_field_V_per_m"] is not None]
+    return {"footing": footing, "cautions": cautions(max(fields, default=None)),
+            "ranking": [entries[k]["name"] for k in order],
             "ranked_on": "coupling.beta_c_per_field_m_per_V (descending)",
             "candidates": [entries[k] for k in order],
             "definitions": {
@@ -567,5 +572,7 @@ def compare_command(args, *, evaluator: Callable = _default_evaluator,
               f"kappa = {rp.fmt(e['coupling'].get('structure_factor')):<10} "
               f"damage = {rp.fmt(e['coupling'].get('damage_factor'))}")
     print(f"  json: {out_dir / 'compare.json'}\n  report: {html_path}")
+    for line in data["cautions"]:
+        print(line)
     return 0
 

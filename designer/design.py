@@ -751,8 +751,10 @@ def run_design(spec: Spec, out_dir: str | Path, config: DesignConfig, *, resume:
 # ---------------------------------------------------------------------------------
 def design_raw(spec: Spec, params) -> dict:
     """The spec tree with the ``[sample]`` table of ``params`` (a complete spec)."""
+    from designer.units import tidy
+
     raw = copy.deepcopy(spec.raw)
-    raw["sample"] = get_family(spec.family).to_table(params)
+    raw["sample"] = tidy(get_family(spec.family).to_table(params))
     return raw
 
 
@@ -890,7 +892,13 @@ def write_outputs(result: DesignResult, out_dir: str | Path, *, status=None) -> 
     out = Path(out_dir)
     p = result.problem
     spec = p.spec
-    raw = design_raw(spec, p.design_params(result.best_u))
+    # stored as a cleanroom can make it, and evaluated as stored (design.toml is reloaded)
+    from designer.units import cleanroom_round
+
+    params = get_family(spec.family).replace(
+        p.design_params(result.best_u),
+        cleanroom_round(p.values_of(result.best_u), p.config.bounds))
+    raw = design_raw(spec, params)
     if p.chain is not None:
         # the pattern lives on the design grid: pin the step so evaluate uses that grid
         vio.write_atomic(out / "density.npy", _npy_bytes(p.binarized(result.best_u)))

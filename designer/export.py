@@ -481,13 +481,13 @@ def layout_rule_check(view: geo.TopView, s: LayoutSettings, rules) -> list[Findi
                                          "opening")):
             for part in find(v, s.tone, limit):
                 out.append(Finding("layout", rule, part.size_m, limit, part.center_m,
-                                   f"{word}{level} of {part.area_m2 * 1e12:.4g} um^2"))
+                                   f"{word}{level} of {part.area_m2 * 1e12:.4g} µm²"))
     x0, y0, x1, y1 = view.frame
     extent = max(x1 - x0, y1 - y0)
     if extent > rules.write_field_m * (1 + 1e-9):
         out.append(Finding("layout", "write_field", extent, rules.write_field_m,
                            (0.5 * (x0 + x1), 0.5 * (y0 + y1)),
-                           f"pattern frame {(x1 - x0) * 1e6:.4g} x {(y1 - y0) * 1e6:.4g} um "
+                           f"pattern frame {(x1 - x0) * 1e6:.4g} x {(y1 - y0) * 1e6:.4g} µm "
                            "(larger than one write field: stitching)"))
     decorated = s.frame or s.marks or bool(s.label)
     if decorated and rules.min_gap_m > 0 and s.clearance_m < rules.min_gap_m * (1 - 1e-9):
@@ -597,8 +597,8 @@ def write_preview(path: str | os.PathLike, drawing: Drawing, view: geo.TopView,
     ax.set_xlim(bx[0] * 1e6 - pad, bx[2] * 1e6 + pad)
     ax.set_ylim(bx[1] * 1e6 - pad, bx[3] * 1e6 + pad)
     ax.set_aspect("equal")
-    ax.set_xlabel("x (um)")
-    ax.set_ylabel("y (um)")
+    ax.set_xlabel("x (µm)")
+    ax.set_ylabel("y (µm)")
     ax.set_title(f"{view.kind}; tone '{s.tone}'", fontsize=10)
     ax.legend(loc="upper left", bbox_to_anchor=(1.02, 1.0), fontsize=7, framealpha=0.85)
     return vio.save_figure(fig, path)
@@ -663,11 +663,11 @@ def _text_report(summ: dict, findings) -> str:
         lines.append(f"wrote {summ['file']} ({word}): {summ['sample']}, tone "
                      f"'{summ['tone']}'")
     lines.append(f"  pattern: {summ['polygons']} polygons on layer "
-                 f"{summ['layer'][0]}/{summ['layer'][1]}, area {summ['area_m2'] * 1e12:.6g} um^2")
+                 f"{summ['layer'][0]}/{summ['layer'][1]}, area {summ['area_m2'] * 1e12:.6g} µm²")
     if summ["bbox_m"]:
         b = [v * 1e6 for v in summ["bbox_m"]]
-        lines.append(f"  bounding box: x {b[0]:.4f} .. {b[2]:.4f} um, y {b[1]:.4f} .. "
-                     f"{b[3]:.4f} um")
+        lines.append(f"  bounding box: x {b[0]:.4f} .. {b[2]:.4f} µm, y {b[1]:.4f} .. "
+                     f"{b[3]:.4f} µm")
     if findings:
         lines.append(f"  {len(findings)} design-rule violation(s), ignored (--ignore-rules)")
         lines += ["    " + f.message for f in findings[:_TEXT_LIMIT]]

@@ -608,7 +608,7 @@ class Finding:
         if self.plane != "layout":
             return f"{self.plane}: " + Violation(self.rule, self.measured_m, self.limit_m,
                                                  self.location_m, self.description).message
-        where = f"at x = {x * 1e6:.4f} um, y = {v * 1e6:.4f} um"
+        where = f"at x = {x * 1e6:.4f} µm, y = {v * 1e6:.4f} µm"
         relation = "above the maximum" if self.measured_m > self.limit_m else "below the minimum"
         return (f"layout: {self.rule}: {self.description} {where} measures "
                 f"{self.measured_m * 1e9:.1f} nm, {relation} {self.limit_m * 1e9:.1f} nm")

@@ -170,7 +170,7 @@ def slit_intervals(params, field_x_m: float) -> list[tuple[float, float]]:
     P = params.period_m
     n = int(math.floor(field_x_m / P * (1 + 1e-12)))
     if n < 1:
-        raise LayoutError(f"the field ({field_x_m * 1e6:.6g} um) is narrower than one "
+        raise LayoutError(f"the field ({field_x_m * 1e6:.6g} µm) is narrower than one "
                           f"period ({P * 1e9:.6g} nm)")
     x0 = -0.5 * n * P
     lim = 0.5 * field_x_m * (1 + 1e-12)
@@ -204,7 +204,7 @@ def membrane_top_view(params, field_m: tuple[float, float], *, margin_m: float =
     # the cross-section's x in the period nearest the field centre
     crossing = -0.5 * n * P + (n // 2) * P + electron_x_m % P
     return TopView(tuple(keep), grow(frame, margin_m),
-                   f"membrane, {len(slits)} slits over a {fx * 1e6:.6g} um field",
+                   f"membrane, {len(slits)} slits over a {fx * 1e6:.6g} µm field",
                    widths_m=widths, crossing_x_m=crossing)
 
 
