@@ -78,6 +78,7 @@ class TopView:
                                                       # lithography level (level 0 first)
     origin_m: tuple[float, float] | None = None   # wafer plane: where the simulated
                                                   # (x, z) = (0, 0) of one period lands
+    band_origins_m: tuple = ()    # wafer plane: (origin, (y_lo, y_hi)) per row band
 
     def level_views(self) -> list["TopView"]:
         """One view per lithography level (the view itself when it has one level)."""
@@ -348,10 +349,29 @@ def _m(polys) -> list[np.ndarray]:
     return [np.asarray(p.points, dtype=float) / _NM for p in polys]
 
 
+def drop_collinear(p: np.ndarray, tol_m: float = 1e-13) -> np.ndarray:
+    """The polygon without vertices that lie on the straight line through their
+    neighbours (the polygon engine leaves them where pieces were joined; some
+    consumers, e.g. Meep's prisms, take the first three vertices to span the plane)."""
+    p = np.asarray(p, dtype=float)
+    while len(p) > 3:
+        a, b = np.roll(p, 1, axis=0) - p, np.roll(p, -1, axis=0) - p
+        cross = a[:, 0] * b[:, 1] - a[:, 1] * b[:, 0]
+        scale = np.hypot(*a.T) * np.hypot(*b.T) + 1e-300
+        flat = np.abs(cross) <= tol_m * np.sqrt(scale) + 1e-12 * scale
+        if not flat.any():
+            break
+        p = p[~flat] if (~flat).sum() >= 3 else p
+        if (~flat).sum() < 3:
+            break
+    return p
+
+
 def union(polys) -> list[np.ndarray]:
     if not polys:
         return []
-    return _m(gdstk.boolean(_nm(polys), [], "or", precision=_ENGINE_PRECISION))
+    return [drop_collinear(q) for q in
+            _m(gdstk.boolean(_nm(polys), [], "or", precision=_ENGINE_PRECISION))]
 
 
 def rect_subtract(a, b) -> list[np.ndarray]:

@@ -463,7 +463,7 @@ def polygons(fr: FreeformRegion, layout, family_polygons: list[Polygon], rho_phy
     solid pixels traced along pixel edges (designer.layout.trace_pixels)."""
     import gdstk
 
-    from designer.layout import rectangle, trace_pixels
+    from designer.layout import rectangle, trace_pixels, union
 
     g = layout.grid
     ps = parts(fr, layout)
@@ -482,10 +482,34 @@ def polygons(fr: FreeformRegion, layout, family_polygons: list[Polygon], rho_phy
         for piece in gdstk.boolean([np.asarray(poly.vertices_m) * 1e9], boxes, "not",
                                    precision=1e-4):
             out.append(Polygon(np.asarray(piece.points) * 1e-9, poly.material_name, poly.eps))
+    traced = []
     for cells, block in zip(ps, split(fr, layout, np.asarray(rho_phys))):
-        for verts in trace_pixels(block > 0.5, (g.dx, g.dz), part_origin(cells, layout)):
-            out.append(Polygon(verts, fr.material.name, complex(fr.material.eps)))
+        traced += trace_pixels(block > 0.5, (g.dx, g.dz), part_origin(cells, layout))
+    # one polygon per connected piece of the region's material, joined with the family's
+    # pieces of that material it touches: pieces cut at a region edge or at the period's
+    # seam would leave interfaces that are not there (a field solver smooths across
+    # them, and the corners would be taken as real for E_max)
+    same = [np.asarray(q.vertices_m) for q in out if q.material_name == fr.material.name
+            and complex(q.eps) == complex(fr.material.eps)]
+    out = [q for q in out if not (q.material_name == fr.material.name
+                                  and complex(q.eps) == complex(fr.material.eps))]
+    if ps[0].periodic_x and traced:
+        P = g.size_x
+        traced = [v + np.array([s, 0.0]) for v in traced for s in (-P, 0.0, P)]
+    x_lo, x_hi = g.x0, g.x0 + g.size_x
+    for verts in union(same + traced):
+        if ps[0].periodic_x and not (verts[:, 0].max() > x_lo and verts[:, 0].min() < x_hi):
+            continue                       # an image wholly outside the cell
+        out.append(Polygon(verts, fr.material.name, complex(fr.material.eps)))
     return out
+
+
+def z_extent(fr: FreeformRegion) -> tuple[float, float]:
+    """Lowest and highest z of the region and its upper region (m)."""
+    lo, hi = fr.z_m
+    if fr.upper is not None:
+        lo, hi = min(lo, fr.mirror_z_m - fr.z_m[1]), max(hi, fr.mirror_z_m - fr.z_m[0])
+    return lo, hi
 
 
 def check_path_clear(fr: FreeformRegion, z_electron: float, ctx: SampleContext) -> None:
