@@ -417,6 +417,33 @@ def rect_subtract(a, b) -> list[np.ndarray]:
     return union(rects)
 
 
+def rectangles(poly: np.ndarray) -> list[np.ndarray]:
+    """A rectilinear polygon as rectangles (vertical strips between its distinct x
+    coordinates, one rectangle per run of covered cells); any other polygon as itself.
+
+    For solvers that handle simple convex shapes better than long staircase outlines
+    (Meep's prisms: measured on a free-form pattern, a 102-vertex outline was refused
+    by its prism set-up and others were misplaced, while the same pattern as
+    rectangles agreed with FDFD to 3 %)."""
+    from matplotlib.path import Path as _Path
+
+    p = np.asarray(poly, dtype=float)
+    d = np.diff(np.vstack([p, p[:1]]), axis=0)
+    if len(p) <= 4 or not np.all((np.abs(d[:, 0]) < 1e-15) | (np.abs(d[:, 1]) < 1e-15)):
+        return [p]
+    xs, ys = np.unique(p[:, 0]), np.unique(p[:, 1])
+    cx, cy = 0.5 * (xs[1:] + xs[:-1]), 0.5 * (ys[1:] + ys[:-1])
+    pts = np.stack(np.meshgrid(cx, cy, indexing="ij"), axis=-1).reshape(-1, 2)
+    inside = _Path(p).contains_points(pts).reshape(len(cx), len(cy))
+    out = []
+    for i in range(len(cx)):
+        col = np.concatenate([[False], inside[i], [False]]).astype(np.int8)
+        dd = np.diff(col)
+        for a, b in zip(np.nonzero(dd == 1)[0], np.nonzero(dd == -1)[0]):
+            out.append(rectangle(xs[i], ys[a], xs[i + 1], ys[b]))
+    return out
+
+
 def complement(view: TopView) -> list[np.ndarray]:
     """What is etched for tone ``remove``: the frame minus the kept material."""
     return rect_subtract([rectangle(*view.frame)], view.keep)
