@@ -28,9 +28,9 @@ from designer import io as vio  # noqa: E402
 from designer.demo import cli, cli_json, spec_text, study_main, study_script  # noqa: E402
 
 # quick: a coarse grid and short runs (for the test suite); full: the default grid
-QUICK = {"solver.grid_step_nm": 40.0, "optimize.iterations": 4}
-FREEFORM_ITERATIONS = {True: 6, False: 60}
-CROSSCHECK_STEP_NM = {True: 40.0, False: 12.5}
+QUICK = {"solver.grid_step_nm": 25.0, "optimize.iterations": 3}
+FREEFORM_ITERATIONS = {True: 4, False: 60}
+CROSSCHECK_STEP_NM = {True: 25.0, False: 12.5}
 # Published reference for the size of the gain: adjoint-designed accelerator structures
 # against rectangular pillars (T. W. Hughes et al., Opt. Express 25, 15414, 2017).
 TARGETS = {"structure_factor_ratio": 2.0, "damage_factor_ratio": 1.3}
