@@ -541,6 +541,8 @@ def snap_to_rules(fr: FreeformRegion, layout, pattern, rules) -> np.ndarray:
     """
     from scipy import ndimage
 
+    from designer.fabrication import disc_element
+
     pattern = np.asarray(pattern, dtype=float) > 0.5
     g = layout.grid
     kx_f = int(math.ceil(rules.min_feature_m / g.dx - 1e-6))
@@ -550,13 +552,14 @@ def snap_to_rules(fr: FreeformRegion, layout, pattern, rules) -> np.ndarray:
     ps = parts(fr, layout)
     periodic = ps[0].periodic_x
 
-    def morph(a, size, opening):
-        if size[0] <= 1 and size[1] <= 1:
-            return a
-        px, pz = size[0], size[1]
+    def morph(a, size, opening, st=None):
+        if st is None:
+            if size[0] <= 1 and size[1] <= 1:
+                return a
+            st = np.ones(size, dtype=bool)
+        px, pz = st.shape
         big = np.pad(a, ((px, px), (0, 0)), mode="wrap" if periodic else "edge")
         big = np.pad(big, ((0, 0), (pz, pz)), mode="edge")
-        st = np.ones(size, dtype=bool)
         op = ndimage.binary_opening if opening else ndimage.binary_closing
         return op(big, structure=st)[px:px + a.shape[0], pz:pz + a.shape[1]]
 
@@ -571,11 +574,20 @@ def snap_to_rules(fr: FreeformRegion, layout, pattern, rules) -> np.ndarray:
         inside = np.zeros_like(base)
         for c in ps:
             inside[c.i0:c.i1, c.k0:c.k1] = True
-        for _ in range(4):
+        for _ in range(6):
             before = full.copy()
             inner = full[:, n:g.nz - n]
-            inner = morph(inner, (kx_f, kz_f), True)
+            # squares: the drawn layout's width/space check; discs: the pixel check of
+            # the pattern (fabrication.pattern_rule_check), which also sees diagonals
+            # voids first (closing: squares, then discs), then solids (opening: discs,
+            # then squares): what is left is a union of squares of the minimum feature,
+            # which passes both the disc check and the layout's square check
             inner = morph(inner, (kx_g, kz_g), False)
+            if rules.min_gap_m > 0:
+                inner = morph(inner, None, False, disc_element(rules.min_gap_m, g.dx, g.dz))
+            if rules.min_feature_m > 0:
+                inner = morph(inner, None, True, disc_element(rules.min_feature_m, g.dx, g.dz))
+            inner = morph(inner, (kx_f, kz_f), True)
             full[:, n:g.nz - n] = np.where(inside[:, n:g.nz - n], inner,
                                            before[:, n:g.nz - n])
             if (full == before).all():

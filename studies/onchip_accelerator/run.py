@@ -132,6 +132,7 @@ def side_by_side(evs, titles):
 def run_study(out: Path, quick: bool) -> dict:
     from designer.crosscheck import MeepNotInstalledError, crosscheck, crosscheck_figure
     from designer.crosscheck import crosscheck_json
+    from designer.errors import VelomatchError
     from designer.spec import dump_spec, load_spec
 
     t0 = time.monotonic()
@@ -177,8 +178,14 @@ def run_study(out: Path, quick: bool) -> dict:
     say("step 5/5: GDSII layouts and SVG previews")
     layouts = {}
     for name, d in (("rectangular", rect_dir), ("freeform", ff_dir)):
-        summ = cli_json(["export", d / "design.toml", "--out", out / f"{name}.gds",
-                         "--preview", out / f"{name}.svg"])
+        try:
+            summ = cli_json(["export", d / "design.toml", "--out", out / f"{name}.gds",
+                             "--preview", out / f"{name}.svg"])
+        except VelomatchError as exc:
+            # the design-rule check refused it (design reported the same verdict)
+            layouts[name] = {"file": None, "refused": str(exc)}
+            say(f"  {name}: export refused by the design-rule check")
+            continue
         layouts[name] = {"file": f"{name}.gds", "polygons": summ["polygons"],
                          "area_um2": summ["area_m2"] * 1e12,
                          "violations": len(summ["violations"])}
