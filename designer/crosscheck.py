@@ -57,7 +57,6 @@ Resolution
 from __future__ import annotations
 
 import dataclasses
-
 import math
 import sys
 import time

@@ -54,7 +54,6 @@
 from __future__ import annotations
 
 import datetime as _dt
-import math
 import os
 import sys
 import tempfile

@@ -130,8 +130,12 @@ def side_by_side(evs, titles):
 
 
 def run_study(out: Path, quick: bool) -> dict:
-    from designer.crosscheck import MeepNotInstalledError, crosscheck, crosscheck_figure
-    from designer.crosscheck import crosscheck_json
+    from designer.crosscheck import (
+        MeepNotInstalledError,
+        crosscheck,
+        crosscheck_figure,
+        crosscheck_json,
+    )
     from designer.errors import VelomatchError
     from designer.spec import dump_spec, load_spec
 
