@@ -56,6 +56,7 @@ Resolution
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import sys
 import time
@@ -259,6 +260,11 @@ def crosscheck(spec, *, grid_step_m: float | None = None, tolerance: float = DEF
     kb = float(fields.bloch_kx)
     path = layout.path
     polygons = family.polygons(spec.sample, spec.context, layout)
+    # staircase outlines (free-form pixels) go to Meep as rectangles (layout.rectangles)
+    from designer.layout import rectangles
+
+    polygons = [dataclasses.replace(q, vertices_m=r) for q in polygons
+                for r in rectangles(q.vertices_m)]
 
     if path.direction == "x":
         kz, wz = _pixel_pair(path.z_m, physical_region(layout)[0], g.dz)

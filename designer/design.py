@@ -302,8 +302,14 @@ class DesignProblem:
         return base + ((self.beta_at(iteration),) if self.chain is not None else ())
 
     def binarized(self, u) -> np.ndarray:
-        """The fabricated free-form pattern of ``u`` (nominal design, beta = inf)."""
-        return self.chain.binarized(self.x_of(u)[self.n_keys:].reshape(self.chain.shape))
+        """The fabricated free-form pattern of ``u``: the nominal design at beta = inf,
+        with what breaks the minimum feature and gap opened/closed away
+        (designer.families.region.snap_to_rules)."""
+        from designer.families import region
+
+        pattern = self.chain.binarized(self.x_of(u)[self.n_keys:].reshape(self.chain.shape))
+        return region.snap_to_rules(self.spec.sample.freeform, self.models[0].layout, pattern,
+                                    self.spec.fabrication)
 
     def pattern_u(self, u, pattern) -> np.ndarray:
         return np.concatenate([np.asarray(u, dtype=float)[:self.n_keys],

@@ -54,7 +54,6 @@
 from __future__ import annotations
 
 import datetime as _dt
-import math
 import os
 import sys
 import tempfile
@@ -347,6 +346,27 @@ def freeform_top_view(spec, settings: LayoutSettings) -> geo.TopView:
         raise SpecError(spec.source, "layout.field_um", str(exc)) from None
 
 
+def _row_bands(mask: np.ndarray) -> list[tuple[int, int, np.ndarray]]:
+    """Bands ``[k_lo, k_hi)`` of consecutive rows holding material (not every row of a
+    band is a full slab), with the columns that hold material anywhere in the band;
+    rows of full slab or of no material separate bands (slab rows join a band of
+    their own, whose cut does not matter)."""
+    rows = mask.any(axis=0)
+    out, k = [], 0
+    nz = mask.shape[1]
+    while k < nz:
+        if not rows[k]:
+            k += 1
+            continue
+        full = mask[:, k].all()
+        j = k
+        while j < nz and rows[j] and mask[:, j].all() == full:
+            j += 1
+        out.append((k, j, mask[:, k:j].any(axis=1)))
+        k = j
+    return out
+
+
 def _widest_void(columns) -> int:
     cols = np.asarray(columns, dtype=bool)
     if cols.all():
@@ -365,8 +385,10 @@ def wafer_top_view(spec, settings: LayoutSettings) -> geo.TopView:
     period (family polygons, free-form pixels traced exactly) are drawn with x -> x and
     z -> y, clipped to the simulated domain inside the PML (semi-infinite parts end
     there), and repeated ``round(length / period)`` times along x, centred on x = 0.
-    The period window starts in the widest column that holds no patterned material,
-    so no pillar is cut at the ends.  The frame is the simulated domain: with tone
+    Each row band (consecutive grid rows holding material, e.g. each of two facing
+    rows) gets its own period window, started in its widest column without material,
+    so no pillar is cut at the ends (``row_bands`` in the summary: where each band's
+    simulated x = 0 lands).  The frame is the simulated domain: with tone
     ``remove`` everything simulated as vacuum is etched.
     """
     import gdstk
@@ -383,28 +405,36 @@ def wafer_top_view(spec, settings: LayoutSettings) -> geo.TopView:
     n = _grating_periods(spec)
     z_lo = g.z0 + lay.pml_cells_z * g.dz
     z_hi = g.z0 + (g.nz - lay.pml_cells_z) * g.dz
-    mask = np.asarray(lay.material_mask, dtype=bool)[:, lay.pml_cells_z:g.nz - lay.pml_cells_z]
-    patterned = mask[:, ~mask.all(axis=0)]          # rows that are not a full slab
-    free = ~patterned.any(axis=1) if patterned.size else np.ones(g.nx, dtype=bool)
-    cut = geo.widest_void_centre(~free, g.dx) if free.any() else 0.0
-    x_cut = g.x0 + cut
-    window = geo.rectangle(x_cut, z_lo, x_cut + P, z_hi) * 1e9
+    n_pml = lay.pml_cells_z
+    mask = np.asarray(lay.material_mask, dtype=bool)[:, n_pml:g.nz - n_pml]
     polys = [np.asarray(q.vertices_m) * 1e9 for q in family.polygons(p, spec.context, lay)]
-    pieces = []
-    for shift in (-P, 0.0, P):
-        moved = [q + np.array([shift * 1e9, 0.0]) for q in polys]
-        pieces += [np.asarray(x.points) * 1e-9 for x in
-                   gdstk.boolean(moved, [window], "and", precision=1e-4)]
-    pieces = geo.union(pieces)
     x_first = -0.5 * n * P
-    keep = geo.union([q + np.array([x_first - x_cut + k * P, 0.0])
-                      for k in range(n) for q in pieces])
+    keep, origins = [], []
+    # each row band (consecutive grid rows holding a pattern) gets its own period window,
+    # started in its widest column without material, so no row is cut through a pillar
+    for k_lo, k_hi, cols in _row_bands(mask):
+        free = ~cols
+        cut = geo.widest_void_centre(cols, g.dx) if free.any() else 0.0
+        x_cut = g.x0 + cut
+        zb_lo = z_lo + k_lo * g.dz if k_lo > 0 else z_lo
+        zb_hi = z_lo + k_hi * g.dz if k_hi < mask.shape[1] else z_hi
+        window = geo.rectangle(x_cut, zb_lo, x_cut + P, zb_hi) * 1e9
+        pieces = []
+        for shift in (-P, 0.0, P):
+            moved = [q + np.array([shift * 1e9, 0.0]) for q in polys]
+            pieces += [np.asarray(x.points) * 1e-9 for x in
+                       gdstk.boolean(moved, [window], "and", precision=1e-4)]
+        keep += [q + np.array([x_first - x_cut + k * P, 0.0]) for k in range(n) for q in pieces]
+        if not cols.all():                  # full slabs: their window does not matter
+            origins.append(((x_first - x_cut, 0.0), (zb_lo, zb_hi)))
+    keep = geo.union(keep)
     frame = geo.grow((x_first, z_lo, -x_first, z_hi), settings.margin_m)
     free_text = " with a free-form pattern" if getattr(p, "freeform", None) is not None else ""
     kind = (f"wafer-plane {'two' if p.sides == 2 else 'one'}-row structure{free_text}, "
             f"{n} periods, etched through {p.plane.device_layer_m * 1e9:.4g} nm")
     return geo.TopView(tuple(keep), frame, kind, path_y_m=lay.path.z_m,
-                       origin_m=(x_first - x_cut, 0.0))
+                       origin_m=origins[0][0] if origins else (x_first, 0.0),
+                       band_origins_m=tuple(origins))
 
 
 # ---------------------------------------------------------------------------------
@@ -622,6 +652,7 @@ def summary(drawing: Drawing, view: geo.TopView, s: LayoutSettings, findings, *,
                             "area_m2": float(sum(geo.polygon_area(q) for q in x[3]))}
                            for x in drawing.shapes if x[0] == "pattern"],
         "origin_m": list(view.origin_m) if view.origin_m is not None else None,
+        "row_bands": [{"origin_m": list(o), "y_m": list(y)} for o, y in view.band_origins_m],
         "polygons": len(pattern), "polygons_total": len(every),
         "area_m2": float(sum(geo.polygon_area(p) for p in pattern)),
         "bbox_m": list(geo.bounding_box(pattern)) if pattern else None,

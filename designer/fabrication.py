@@ -684,6 +684,46 @@ def column_run_violations(columns: np.ndarray, dx: float, x0: float, z: float,
     return out
 
 
+def square_findings(lay, fr, pattern, rules):
+    """Parts of a wafer-plane free-form pattern that a square of ``min_feature`` (solid)
+    or ``min_gap`` (void) pixels does not reach, by opening/closing on the pixel grid
+    (rectilinear sets: the criterion of designer.layout.thin_parts).  Yields
+    ``(rule, limit, solid?, (width, (x, z), pixels, area))`` per connected part."""
+    from designer.families import region
+
+    g = lay.grid
+    n = lay.pml_cells_z
+    full = np.asarray(lay.material_mask, dtype=bool).copy()
+    inside = np.zeros_like(full)
+    for cells, block in zip(region.parts(fr, lay), region.split(fr, lay, pattern)):
+        full[cells.i0:cells.i1, cells.k0:cells.k1] = block
+        inside[cells.i0:cells.i1, cells.k0:cells.k1] = True
+    full, inside = full[:, n:g.nz - n], inside[:, n:g.nz - n]
+    periodic = region.parts(fr, lay)[0].periodic_x
+    for rule, limit, solid_phase in (("min_feature", rules.min_feature_m, True),
+                                     ("min_gap", rules.min_gap_m, False)):
+        if limit <= 0:
+            continue
+        kx = int(math.ceil(limit / g.dx * (1 - _REL_TOL) - 1e-6))
+        kz = int(math.ceil(limit / g.dz * (1 - _REL_TOL) - 1e-6))
+        phase = full if solid_phase else ~full
+        big = np.pad(phase, ((kx, kx), (0, 0)), mode="wrap" if periodic else "edge")
+        big = np.pad(big, ((0, 0), (kz, kz)), mode="edge")
+        opened = ndimage.binary_opening(big, structure=np.ones((kx, kz), dtype=bool))
+        removed = phase & ~opened[kx:kx + phase.shape[0], kz:kz + phase.shape[1]] & inside
+        labels, count = ndimage.label(removed)
+        if periodic and count:
+            labels = _merge_periodic(labels, count)
+        for lab in np.unique(labels[labels > 0]):
+            ii, kk = np.nonzero(labels == lab)
+            w = (min(ii.max() - ii.min() + 1, kk.max() - kk.min() + 1)
+                 * min(g.dx, g.dz))
+            x = g.x0 + (ii.mean() + 0.5) * g.dx
+            z = g.z0 + (kk.mean() + n + 0.5) * g.dz
+            yield rule, limit, solid_phase, (float(w), (float(x), float(z)), int(ii.size),
+                                             float(ii.size * g.dx * g.dz))
+
+
 def freeform_findings(spec, params, grid_step_m: float | None = None) -> list[Finding]:
     """Can the sample's free-form pattern be made as it is?
 
@@ -707,11 +747,14 @@ def freeform_findings(spec, params, grid_step_m: float | None = None) -> list[Fi
     out: list[Finding] = []
     names = ["region", "upper region"]
     if fr.plane == "wafer":
-        for name, cells, block in zip(names, region.parts(fr, lay), blocks):
-            for v in pattern_rule_check(block, g.dx, g.dz, spec.fabrication,
-                                        origin=region.part_origin(cells, lay),
-                                        periodic_x=cells.periodic_x):
-                out.append(_from_violation("wafer plane", v))
+        # the pattern is the drawn top view: the layout's criterion (a square of the
+        # minimum feature fits around every solid pixel, one of the minimum gap around
+        # every void pixel), on the whole cell with the family's material around it
+        for rule, limit, solid_phase, v in square_findings(lay, fr, pattern,
+                                                           spec.fabrication):
+            out.append(Finding("wafer plane", rule, v[0], limit, v[1],
+                               f"free-form {'solid' if solid_phase else 'void'} part of "
+                               f"{v[2]} pixels ({v[3] * 1e18:.0f} nm^2)"))
         return out
     for name, cells, block in zip(names, region.parts(fr, lay), blocks):
         x0, z0 = region.part_origin(cells, lay)
@@ -731,6 +774,14 @@ def freeform_findings(spec, params, grid_step_m: float | None = None) -> list[Fi
             for v in column_run_violations(slab[:, 0], g.dx, x0, z_mid, spec.fabrication,
                                            periodic=cells.periodic_x, what=step):
                 out.append(_from_violation("cross-section", v))
+        if spec.family == "membrane":
+            z_lo, z_hi = z0, z0 + cells.shape[1] * g.dz
+            if fr.etch_steps != 1 or z_lo > 0.5 * g.dz or \
+                    z_hi < params.thickness_m - 0.5 * g.dz:
+                out.append(Finding(
+                    "cross-section", "region", math.nan, math.nan, (x0, z0),
+                    f"free-form {name} of a membrane: slits are etched through the film "
+                    "in one step, so the region must span the film with etch_steps = 1"))
         if not cells.periodic_x:
             out.append(Finding(
                 "cross-section", "region", math.nan, math.nan, (x0, z0),

@@ -17,7 +17,7 @@ import numpy as np
 from designer import units
 from designer.families.base import MaterialRef, decay_length
 
-_SKIP = {"wavelength_m", "freeform"}
+_SKIP = {"wavelength_m", "freeform", "plane"}
 
 
 def _material(ref: MaterialRef) -> dict:
@@ -75,6 +75,11 @@ def resolved_sample(ev) -> dict:
         out[key] = value
     if getattr(params, "freeform", None) is not None:
         out["freeform_region"] = True
+    plane = getattr(params, "plane", None)
+    if plane is not None:          # designer.families.region.PlaneInfo
+        out["plane"] = plane.plane
+        if plane.device_layer_m is not None:
+            out["device_layer_m"] = plane.device_layer_m
     out["laser_wavelength_m"] = spec.laser.wavelength_m
     layout = ev.run.layout
     path = layout.path

@@ -198,3 +198,17 @@ def test_depth_changing_column_is_refused_by_both(tmp_path, capsys):
     assert any("etch" in m for m in messages)
     outcome, printed = _export(path, tmp_path, capsys)
     assert outcome == "refused" and printed == messages[:20]
+
+
+def test_membrane_region_not_through_the_film_is_a_finding(tmp_path, capsys):
+    # slits are etched through the film: a region over half the film cannot be drawn,
+    # and both design and export say so (exit 3), rather than design calling it clean
+    text = MEMBRANE.format(plane=CROSS, freeform=FF + "z_nm = [0.0, 50.0]",
+                           variables='["density"]')
+    path = tmp_path / "half.toml"
+    path.write_text(HEAD.format(feature=40.0) + text)
+    spec = load_spec(path)
+    messages = _design_verdict(spec)
+    assert any("region" in m and "span the film" in m for m in messages)
+    outcome, printed = _export(path, tmp_path, capsys)
+    assert outcome == "refused" and printed == messages[:20]

@@ -69,7 +69,7 @@ def _meep_available() -> bool:
 # ------------------------------------------------------------------ fast checks
 def test_study_files_are_complete():
     # each study: a script, a README and its spec files (the layout)
-    for name in ("grating_30kV", "membrane_candidates", "prism_tir"):
+    for name in ("grating_30kV", "membrane_candidates", "prism_tir", "onchip_accelerator"):
         folder = STUDIES / name
         assert (folder / "run.py").is_file() and (folder / "README.md").is_file()
         assert list(folder.glob("*.toml")), name
@@ -236,3 +236,41 @@ def test_study_rerun_with_overwrite_replaces_its_own_summary(tmp_path, capsys):
     with pytest.raises(UsageError):
         study_main(["--out", str(tmp_path / "o"), "--overwrite"], **kw)
     assert (tmp_path / "o" / "user.txt").read_text() == "keep me"
+
+
+@pytest.mark.slow
+def test_onchip_accelerator_study(tmp_path):
+    study = _load("onchip_accelerator")
+    s = study.main(["--quick", "--out", str(tmp_path / "oca")])
+    out = tmp_path / "oca"
+    beta, gamma = _kinematics(79e3)
+    lam = 2000e-9
+    sc = s["scenario"]
+    # Lambda = beta lambda (England et al. 2014, from memory) and the decay length
+    # beta gamma lambda / 2 pi that the wafer-plane assumption is stated against
+    assert sc["beta"] == pytest.approx(beta, rel=1e-9)
+    assert sc["period_nm"] == pytest.approx(beta * lam * 1e9, rel=1e-9)
+    assert s["plane"]["decay_length_m"] == pytest.approx(beta * gamma * lam / (2 * math.pi),
+                                                         rel=1e-9)
+    assert "infinitely thick" in s["plane"]["assumption"]
+    # both designs pass the one rule check and export without --ignore-rules
+    for name in ("rectangular", "freeform"):
+        assert s[name]["design_rules"]["clean"], s[name]["design_rules"]
+        assert s["layouts"][name]["violations"] == 0 and (out / f"{name}.gds").is_file()
+        assert (out / f"{name}.svg").is_file()
+    # the rectangular layout: two facing rows of round(L / Lambda) pillars (gdstk)
+    n = round(20e-6 / (beta * lam))
+    assert demo.count_gds_polygons(out / "rectangular.gds", [1, 0]) == 2 * n
+    # error bars are finite and smaller than the figures
+    for name in ("rectangular", "freeform"):
+        for key in ("structure_factor", "damage_factor"):
+            assert 0 <= s[name][key + "_error"] < s[name][key]
+    # the parametric optimizer does not lose against its own start
+    assert s["rectangular"]["structure_factor"] >= \
+        0.98 * s["rectangular"]["start_structure_factor"]
+    if _meep_available():
+        # independent solver on the free-form rows at the quick grid (5 %)
+        assert s["crosscheck"]["relative_difference"] <= 0.05
+    else:
+        assert "skipped" in s["crosscheck"]
+    assert (out / "side_by_side.png").is_file()

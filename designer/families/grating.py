@@ -316,6 +316,10 @@ def layout(p: GratingParams, ctx: SampleContext, grid_step_m: float) -> Simulati
     n_pml = base.pml_cells(ctx.wavelength_m, dx)
     margin = base.margin_m(ctx.wavelength_m)
     z_bot, z_top = _structure_z(p)
+    if p.freeform is not None:
+        # a free-form region may reach past the teeth: it is part of the structure
+        lo, hi = freeform_region.z_extent(p.freeform)
+        z_bot, z_top = min(z_bot, lo), max(z_top, hi)
     z_e = _electron_z(p, ctx)
     hi = z_top + margin
     if p.sides == 1:

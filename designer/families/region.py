@@ -313,23 +313,39 @@ def density_patch(fr: FreeformRegion, layout) -> ff.DensityPatch:
                            periodic_x=periodic)
 
 
+def _rows(z_lo: float, z_hi: float, grid) -> tuple[int, int]:
+    """Grid rows ``[k0, k1)`` that overlap ``[z_lo, z_hi]`` (rounded outward to cell
+    edges, so no sliver of the family's pattern is left between region and edge)."""
+    k0 = int(math.floor((z_lo - grid.z0) / grid.dz + 1e-6))
+    k1 = int(math.ceil((z_hi - grid.z0) / grid.dz - 1e-6))
+    return max(k0, 0), min(max(k1, k0 + 1), grid.nz)
+
+
+def _all_parts(fr: FreeformRegion, layout) -> list[ff.RegionCells]:
+    g = layout.grid
+    xcells = ff.region_cells(density_patch(fr, layout), g)    # x: cell centres inside
+    spans = [_rows(*fr.z_m, g)]
+    if fr.upper is not None:
+        spans.append(_rows(fr.mirror_z_m - fr.z_m[1], fr.mirror_z_m - fr.z_m[0], g))
+        # the same number of rows on both sides (mirrored row for row), grown away
+        # from the channel between them
+        n = max(b - a for a, b in spans)
+        spans = [(spans[0][1] - n, spans[0][1]), (spans[1][0], spans[1][0] + n)]
+        if spans[0][0] < 0 or spans[1][1] > g.nz:
+            raise ValueError("the free-form regions do not fit on the grid")
+    return [ff.RegionCells(xcells.i0, xcells.i1, a, b, xcells.periodic_x) for a, b in spans]
+
+
 def region_cells(fr: FreeformRegion, layout) -> ff.RegionCells:
-    """The design pixels on this layout's grid (ValueError if the region has none)."""
-    return ff.region_cells(density_patch(fr, layout), layout.grid)
+    """The design pixels of the (lower) region on this layout's grid: the cells whose
+    centres lie inside along x, and every row the region overlaps along z (ValueError
+    if the region has none)."""
+    return _all_parts(fr, layout)[0]
 
 
 def parts(fr: FreeformRegion, layout) -> list[ff.RegionCells]:
     """The region's cell blocks: the region, then the upper region (same shape) if any."""
-    lower = region_cells(fr, layout)
-    if fr.upper is None:
-        return [lower]
-    g = layout.grid
-    up = dataclasses.replace(fr, z_m=(fr.mirror_z_m - fr.z_m[1], fr.mirror_z_m - fr.z_m[0]))
-    cells = region_cells(up, layout)
-    # the same number of rows as the lower region (mirrored row for row)
-    k0 = min(cells.k0, g.nz - lower.shape[1])
-    return [lower, ff.RegionCells(cells.i0, cells.i1, k0, k0 + lower.shape[1],
-                                  cells.periodic_x)]
+    return _all_parts(fr, layout)
 
 
 def pattern_shape(fr: FreeformRegion, layout) -> tuple[int, int]:
@@ -447,24 +463,53 @@ def polygons(fr: FreeformRegion, layout, family_polygons: list[Polygon], rho_phy
     solid pixels traced along pixel edges (designer.layout.trace_pixels)."""
     import gdstk
 
-    from designer.layout import rectangle, trace_pixels
+    from designer.layout import rectangle, trace_pixels, union
 
     g = layout.grid
     ps = parts(fr, layout)
     boxes = []
     for cells in ps:
         x0, z0 = part_origin(cells, layout)
-        boxes.append(rectangle(x0, z0, x0 + cells.shape[0] * g.dx,
-                               z0 + cells.shape[1] * g.dz) * 1e9)
+        x1 = x0 + cells.shape[0] * g.dx
+        if cells.periodic_x:
+            # the region replaces the family's pattern in every period: cut the images
+            # of its pieces outside the cell too (they would come back when the cell
+            # is repeated)
+            x0, x1 = x0 - 4 * g.size_x, x1 + 4 * g.size_x
+        boxes.append(rectangle(x0, z0, x1, z0 + cells.shape[1] * g.dz) * 1e9)
     out = []
     for poly in family_polygons:
         for piece in gdstk.boolean([np.asarray(poly.vertices_m) * 1e9], boxes, "not",
                                    precision=1e-4):
             out.append(Polygon(np.asarray(piece.points) * 1e-9, poly.material_name, poly.eps))
+    traced = []
     for cells, block in zip(ps, split(fr, layout, np.asarray(rho_phys))):
-        for verts in trace_pixels(block > 0.5, (g.dx, g.dz), part_origin(cells, layout)):
-            out.append(Polygon(verts, fr.material.name, complex(fr.material.eps)))
+        traced += trace_pixels(block > 0.5, (g.dx, g.dz), part_origin(cells, layout))
+    # one polygon per connected piece of the region's material, joined with the family's
+    # pieces of that material it touches: pieces cut at a region edge or at the period's
+    # seam would leave interfaces that are not there (a field solver smooths across
+    # them, and the corners would be taken as real for E_max)
+    same = [np.asarray(q.vertices_m) for q in out if q.material_name == fr.material.name
+            and complex(q.eps) == complex(fr.material.eps)]
+    out = [q for q in out if not (q.material_name == fr.material.name
+                                  and complex(q.eps) == complex(fr.material.eps))]
+    if ps[0].periodic_x and traced:
+        P = g.size_x
+        traced = [v + np.array([s, 0.0]) for v in traced for s in (-P, 0.0, P)]
+    x_lo, x_hi = g.x0, g.x0 + g.size_x
+    for verts in union(same + traced):
+        if ps[0].periodic_x and not (verts[:, 0].max() > x_lo and verts[:, 0].min() < x_hi):
+            continue                       # an image wholly outside the cell
+        out.append(Polygon(verts, fr.material.name, complex(fr.material.eps)))
     return out
+
+
+def z_extent(fr: FreeformRegion) -> tuple[float, float]:
+    """Lowest and highest z of the region and its upper region (m)."""
+    lo, hi = fr.z_m
+    if fr.upper is not None:
+        lo, hi = min(lo, fr.mirror_z_m - fr.z_m[1]), max(hi, fr.mirror_z_m - fr.z_m[0])
+    return lo, hi
 
 
 def check_path_clear(fr: FreeformRegion, z_electron: float, ctx: SampleContext) -> None:
@@ -478,3 +523,87 @@ def check_path_clear(fr: FreeformRegion, z_electron: float, ctx: SampleContext) 
                             f"the free-form region (z = {lo * 1e9:.4g} .. "
                             f"{hi * 1e9:.4g} nm) contains the electron's path at "
                             f"z = {z_electron * 1e9:.4g} nm", [v * 1e9 for v in fr.z_m])
+
+
+def snap_to_rules(fr: FreeformRegion, layout, pattern, rules) -> np.ndarray:
+    """The binarized pattern with the parts that break the minimum feature and gap
+    removed: morphological opening (solid) and closing (void) with a rectangle of
+    ``ceil(min_feature / pixel)`` (``ceil(min_gap / pixel)``) pixels, repeated until
+    nothing changes (at most four rounds).
+
+    Wafer plane: 2D, on the whole cell with the family's material around the region
+    (what the drawn layout holds), periodic along x.  Cross-section plane: along x only,
+    on each etch step's row of columns (lithography sets the lateral sizes; a slab's
+    thickness is a deposition, not a lithography, rule).  The opening of a rectilinear
+    pixel set by a k x k square keeps exactly the pixels covered by some k x k square
+    inside it, the criterion of the layout check (designer.layout.thin_parts); J. Serra,
+    *Image Analysis and Mathematical Morphology* (1982) -- from memory.
+    """
+    from scipy import ndimage
+
+    from designer.fabrication import disc_element
+
+    pattern = np.asarray(pattern, dtype=float) > 0.5
+    g = layout.grid
+    kx_f = int(math.ceil(rules.min_feature_m / g.dx - 1e-6))
+    kx_g = int(math.ceil(rules.min_gap_m / g.dx - 1e-6))
+    if max(kx_f, kx_g) <= 1:
+        return pattern.astype(float)
+    ps = parts(fr, layout)
+    periodic = ps[0].periodic_x
+
+    def morph(a, size, opening, st=None):
+        if st is None:
+            if size[0] <= 1 and size[1] <= 1:
+                return a
+            st = np.ones(size, dtype=bool)
+        px, pz = st.shape
+        big = np.pad(a, ((px, px), (0, 0)), mode="wrap" if periodic else "edge")
+        big = np.pad(big, ((0, 0), (pz, pz)), mode="edge")
+        op = ndimage.binary_opening if opening else ndimage.binary_closing
+        return op(big, structure=st)[px:px + a.shape[0], pz:pz + a.shape[1]]
+
+    if fr.plane == "wafer":
+        kz_f = int(math.ceil(rules.min_feature_m / g.dz - 1e-6))
+        kz_g = int(math.ceil(rules.min_gap_m / g.dz - 1e-6))
+        n = layout.pml_cells_z
+        base = np.asarray(layout.material_mask, dtype=bool).copy()
+        full = base.copy()
+        for cells, block in zip(ps, split(fr, layout, pattern)):
+            full[cells.i0:cells.i1, cells.k0:cells.k1] = block
+        inside = np.zeros_like(base)
+        for c in ps:
+            inside[c.i0:c.i1, c.k0:c.k1] = True
+        for _ in range(6):
+            before = full.copy()
+            inner = full[:, n:g.nz - n]
+            # squares: the drawn layout's width/space check; discs: the pixel check of
+            # the pattern (fabrication.pattern_rule_check), which also sees diagonals
+            # voids first (closing: squares, then discs), then solids (opening: discs,
+            # then squares): what is left is a union of squares of the minimum feature,
+            # which passes both the disc check and the layout's square check
+            inner = morph(inner, (kx_g, kz_g), False)
+            if rules.min_gap_m > 0:
+                inner = morph(inner, None, False, disc_element(rules.min_gap_m, g.dx, g.dz))
+            if rules.min_feature_m > 0:
+                inner = morph(inner, None, True, disc_element(rules.min_feature_m, g.dx, g.dz))
+            inner = morph(inner, (kx_f, kz_f), True)
+            full[:, n:g.nz - n] = np.where(inside[:, n:g.nz - n], inner,
+                                           before[:, n:g.nz - n])
+            if (full == before).all():
+                break
+        return np.concatenate([full[c.i0:c.i1, c.k0:c.k1] for c in ps], axis=1).astype(float)
+    out = []
+    for block in split(fr, layout, pattern):
+        block = block.copy()
+        for a, b in slab_rows(fr, layout):
+            row = block[:, a:b].mean(axis=1) > 0.5
+            for _ in range(4):
+                before = row.copy()
+                row = morph(row[:, None], (kx_f, 1), True)[:, 0]
+                row = morph(row[:, None], (kx_g, 1), False)[:, 0]
+                if (row == before).all():
+                    break
+            block[:, a:b] = row[:, None]
+        out.append(block)
+    return np.concatenate(out, axis=1).astype(float)
