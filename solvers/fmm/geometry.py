@@ -138,11 +138,17 @@ class Slit:
 SHAPES = (Circle, Ellipse, Slit)
 
 
+def _safe_sqrt(x2):
+    """sqrt with a finite derivative at 0 (the coefficients at G = 0 are smooth)."""
+    pos = x2 > 0
+    return jnp.where(pos, jnp.sqrt(jnp.where(pos, x2, 1.0)), 0.0)
+
+
 def _shape_coefficients(shape, gx, gy, area, a1x):
     """Indicator coefficients ``chi_G`` (module docstring) at reciprocal vectors (gx, gy)."""
     if isinstance(shape, Circle):
         cx, cy = shape.center
-        rho = jnp.sqrt(gx**2 + gy**2) * shape.radius
+        rho = _safe_sqrt(gx**2 + gy**2) * shape.radius
         amp = np.pi * shape.radius**2 / area * airy_amplitude(rho)
         return amp * jnp.exp(-1j * (gx * cx + gy * cy))
     if isinstance(shape, Ellipse):
@@ -151,7 +157,7 @@ def _shape_coefficients(shape, gx, gy, area, a1x):
         c, s = jnp.cos(shape.angle), jnp.sin(shape.angle)
         gu = gx * c + gy * s
         gv = -gx * s + gy * c
-        rho = jnp.sqrt((a * gu) ** 2 + (b * gv) ** 2)
+        rho = _safe_sqrt((a * gu) ** 2 + (b * gv) ** 2)
         amp = np.pi * a * b / area * airy_amplitude(rho)
         return amp * jnp.exp(-1j * (gx * cx + gy * cy))
     if isinstance(shape, Slit):
@@ -210,14 +216,18 @@ def _orders_pair(orders):
 
 def convolution_matrix(coeff_fn, lattice, orders):
     """Toeplitz matrix ``C_ij = f_{G_i - G_j}`` of a cell function with coefficients
-    ``coeff_fn(gx, gy)`` over the harmonics of :func:`harmonic_indices`."""
+    ``coeff_fn(gx, gy)`` over the harmonics of :func:`harmonic_indices`.  The
+    coefficients are evaluated once on the ``(4 N1 + 1)(4 N2 + 1)`` distinct differences
+    and gathered."""
+    n1, n2 = _orders_pair(orders)
     m, n = harmonic_indices(orders)
-    dm = m[:, None] - m[None, :]
-    dn = n[:, None] - n[None, :]
+    du, dv = np.meshgrid(np.arange(-2 * n1, 2 * n1 + 1), np.arange(-2 * n2, 2 * n2 + 1),
+                         indexing="ij")
     b1, b2 = lattice.reciprocal()
-    gx = dm * b1[0] + dn * b2[0]
-    gy = dm * b1[1] + dn * b2[1]
-    return coeff_fn(gx, gy)
+    gx = du * b1[0] + dv * b2[0]
+    gy = du * b1[1] + dv * b2[1]
+    table = coeff_fn(gx, gy)
+    return table[(m[:, None] - m[None, :]) + 2 * n1, (n[:, None] - n[None, :]) + 2 * n2]
 
 
 def permittivity_coefficients(layer: PatternedLayer, lattice: Lattice, inverse=False):
@@ -245,14 +255,14 @@ def _shape_normal(shape, dx, dy):
     """Level value (negative inside, ~distance outside) and unnormalised normal of one
     shape at displacements (dx, dy) from its centre."""
     if isinstance(shape, Circle):
-        r = jnp.sqrt(dx**2 + dy**2)
+        r = _safe_sqrt(dx**2 + dy**2)
         return jnp.abs(r - shape.radius), dx, dy
     if isinstance(shape, Ellipse):
         a, b = shape.semi_axes
         c, s = jnp.cos(shape.angle), jnp.sin(shape.angle)
         u = dx * c + dy * s
         v = -dx * s + dy * c
-        rho = jnp.sqrt((u / a) ** 2 + (v / b) ** 2)
+        rho = _safe_sqrt((u / a) ** 2 + (v / b) ** 2)
         # gradient of the level function (u/a)^2 + (v/b)^2, back in x, y
         nu, nv = u / a**2, v / b**2
         return jnp.abs(rho - 1.0) * jnp.minimum(a, b), nu * c - nv * s, nu * s + nv * c

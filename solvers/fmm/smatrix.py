@@ -46,20 +46,33 @@ def propagation(x):
 
 def star(a: SMatrix, b: SMatrix) -> SMatrix:
     """Redheffer product: section a below section b (formulas in the module docstring,
-    eliminating the amplitudes between them)."""
+    eliminating the amplitudes between them).  One LU: ``(1 - Rb Ra)^{-1} = 1 + Rb (1 -
+    Ra Rb)^{-1} Ra`` with ``Ra = a.r_top``, ``Rb = b.r_bot``."""
     n = a.t_up.shape[0]
     one = jnp.eye(n, dtype=a.t_up.dtype)
-    # u_mid = (1 - Ra_top Rb_bot)^{-1} (Ta_up u_L + Ra_top Tb_dn d_U)
-    g1 = jnp.linalg.solve(one - a.r_top @ b.r_bot, jnp.concatenate([a.t_up, a.r_top @ b.t_dn],
-                                                                   axis=1))
-    # d_mid = (1 - Rb_bot Ra_top)^{-1} (Rb_bot Ta_up u_L + Tb_dn d_U)
-    g2 = jnp.linalg.solve(one - b.r_bot @ a.r_top, jnp.concatenate([b.r_bot @ a.t_up, b.t_dn],
-                                                                   axis=1))
-    t_up = b.t_up @ g1[:, :n]
-    r_top = b.r_top + b.t_up @ g1[:, n:]
-    r_bot = a.r_bot + a.t_dn @ g2[:, :n]
-    t_dn = a.t_dn @ g2[:, n:]
+    # F = (1 - Ra Rb)^{-1} applied to [Ta_up, Ra Tb_dn, Ra]
+    rhs = jnp.concatenate([a.t_up, a.r_top @ b.t_dn, a.r_top], axis=1)
+    g = jnp.linalg.solve(one - a.r_top @ b.r_bot, rhs)
+    g_up, g_dn, f_ra = g[:, :n], g[:, n:2 * n], g[:, 2 * n:]
+    # u_mid = g_up u_L + g_dn d_U;  d_mid = (1 + Rb F Ra) (Rb Ta u_L + Tb d_U)
+    h = one + b.r_bot @ f_ra
+    t_up = b.t_up @ g_up
+    r_top = b.r_top + b.t_up @ g_dn
+    r_bot = a.r_bot + a.t_dn @ (h @ (b.r_bot @ a.t_up))
+    t_dn = a.t_dn @ (h @ b.t_dn)
     return SMatrix(t_up=t_up, r_bot=r_bot, r_top=r_top, t_dn=t_dn)
+
+
+def propagate_above(a: SMatrix, x) -> SMatrix:
+    """``star(a, propagation(x))`` in closed form (no solve)."""
+    return SMatrix(t_up=x[:, None] * a.t_up, r_bot=a.r_bot,
+                   r_top=x[:, None] * a.r_top * x[None, :], t_dn=a.t_dn * x[None, :])
+
+
+def propagate_below(x, b: SMatrix) -> SMatrix:
+    """``star(propagation(x), b)`` in closed form (no solve)."""
+    return SMatrix(t_up=b.t_up * x[None, :], r_bot=x[:, None] * b.r_bot * x[None, :],
+                   r_top=b.r_top, t_dn=x[:, None] * b.t_dn)
 
 
 def identity(n, dtype=complex):

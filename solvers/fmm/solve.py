@@ -45,8 +45,9 @@ INCIDENCES = ("above", "below")
 @partial(jax.tree_util.register_dataclass,
          data_fields=["lattice", "k0", "kx", "ky", "eps_below", "eps_above", "below",
                       "layers", "above", "reflectance", "transmittance",
-                      "reflected_orders", "transmitted_orders", "polarization"],
-         meta_fields=["orders", "incidence"])
+                      "reflected_orders", "transmitted_orders", "polarization",
+                      "from_above"],
+         meta_fields=["orders"])
 @dataclass(frozen=True)
 class FMMSolution:
     """Solved stack.
@@ -72,8 +73,13 @@ class FMMSolution:
     reflected_orders: jax.Array
     transmitted_orders: jax.Array
     polarization: jax.Array
+    from_above: jax.Array
     orders: tuple = (0, 0)
-    incidence: str = "above"
+
+    @property
+    def incidence(self):
+        """"above" or "below" (needs a concrete solution, not a traced one)."""
+        return "above" if bool(self.from_above) else "below"
 
     @property
     def omega(self):
@@ -142,7 +148,8 @@ def solve(lattice: Lattice, layers, eps_below=1.0, eps_above=1.0, *, wavelength,
     orders = _orders_pair(orders)
     samples = normal_samples or default_normal_samples(orders)
     return _solve(lattice, layers, eps_below, eps_above, wavelength, theta, phi,
-                  _polarization_angle(polarization), orders=orders, incidence=incidence,
+                  _polarization_angle(polarization), 1.0 if incidence == "above" else 0.0,
+                  orders=orders,
                   factorization=factorization, samples=int(samples))
 
 
@@ -151,13 +158,15 @@ def _flux(e, h, m):
     return jnp.real(e[:m] * jnp.conj(h[m:]) - e[m:] * jnp.conj(h[:m]))
 
 
-@partial(jax.jit, static_argnames=("orders", "incidence", "factorization", "samples"))
-def _solve(lattice, layers, eps_below, eps_above, wavelength, theta, phi, psi, *, orders,
-           incidence, factorization, samples):
+@partial(jax.jit, static_argnames=("orders", "factorization", "samples"))
+def _solve(lattice, layers, eps_below, eps_above, wavelength, theta, phi, psi, from_above, *,
+           orders, factorization, samples):
+    # the side of incidence is a traced switch (one compilation serves both sides)
+    above_ = jnp.asarray(from_above, dtype=float) > 0.5
     k0 = 2.0 * np.pi / jnp.asarray(wavelength, dtype=float)
     eps_below = jnp.asarray(eps_below, dtype=complex)
     eps_above = jnp.asarray(eps_above, dtype=complex)
-    eps_in = eps_above if incidence == "above" else eps_below
+    eps_in = jnp.where(above_, eps_above, eps_below)
     n_in = jnp.sqrt(eps_in)
     theta = jnp.asarray(theta, dtype=float)
     phi = jnp.asarray(phi, dtype=float)
@@ -188,50 +197,53 @@ def _solve(lattice, layers, eps_below, eps_above, wavelength, theta, phi, psi, *
         z_b.append(z_b[-1] + t)
     z_top = z_b[-1]
 
-    # S-matrices: interfaces k = 0..L between media k and k+1 (media index 0 = below)
+    # S-matrices: interfaces k = 0..L between media k and k+1 (media index 0 = below);
+    # pre[j]: from the medium below up to the bottom of layer j; suf[j]: from the top
+    # of layer j to the medium above.  Only the response to the one incident wave is
+    # needed, so the global S-matrix is never formed.
     ints = [sm.interface(media[k][1], media[k][2], media[k + 1][1], media[k + 1][2])
             for k in range(n_lay + 1)]
     xs = [jnp.exp(1j * k0 * media[j + 1][0] * thick[j]) for j in range(n_lay)]
-    props = [sm.propagation(x) for x in xs]
     pre = [ints[0]]
     for j in range(1, n_lay):
-        pre.append(sm.star(sm.star(pre[-1], props[j - 1]), ints[j]))
+        pre.append(sm.star(sm.propagate_above(pre[-1], xs[j - 1]), ints[j]))
     suf = [None] * n_lay
     if n_lay:
         suf[-1] = ints[-1]
         for j in range(n_lay - 2, -1, -1):
-            suf[j] = sm.star(ints[j + 1], sm.star(props[j + 1], suf[j + 1]))
-        total = sm.star(sm.star(pre[-1], props[-1]), suf[-1])
-    else:
-        total = ints[0]
+            suf[j] = sm.star(ints[j + 1], sm.propagate_below(xs[j + 1], suf[j + 1]))
 
     # incident wave (tangential E of the (0, 0) harmonic; W = 1 in the outer media)
-    q_in = media[-1][0][g0] if incidence == "above" else media[0][0][g0]
+    q_in = jnp.where(above_, media[-1][0][g0], media[0][0][g0])
     cos_t = q_in / n_in
-    sign = -1.0 if incidence == "above" else 1.0
+    sign = jnp.where(above_, -1.0, 1.0)
     ex = jnp.cos(psi) * sign * jnp.cos(phi) * cos_t - jnp.sin(psi) * jnp.sin(phi)
     ey = jnp.cos(psi) * sign * jnp.sin(phi) * cos_t + jnp.sin(psi) * jnp.cos(phi)
     e_inc = jnp.zeros(2 * m, dtype=complex).at[g0].set(ex).at[m + g0].set(ey)
     zero = jnp.zeros(2 * m, dtype=complex)
-    if incidence == "above":
-        u0, dtop = zero, e_inc * jnp.exp(-1j * k0 * q_in * z_top)
-    else:
-        u0, dtop = e_inc, zero
+    u0 = jnp.where(above_, zero, e_inc)
+    dtop = jnp.where(above_, e_inc * jnp.exp(-1j * k0 * q_in * z_top), zero)
 
-    d0 = total.r_bot @ u0 + total.t_dn @ dtop
-    utop = total.t_up @ u0 + total.r_top @ dtop
-
+    # amplitudes in layer j: u = Ta u0 + Ra X d,  d = Rb X u + Tb dtop  (a = pre, b = suf)
     modes = []
+    one = jnp.eye(2 * m, dtype=complex)
     for j in range(n_lay):
         q, w, v, z = media[j + 1]
         x = xs[j]
         a, b = pre[j], suf[j]
-        one = jnp.eye(2 * m, dtype=complex)
-        lhs = one - (a.r_top * x[None, :]) @ (b.r_bot * x[None, :])
-        u = jnp.linalg.solve(lhs, a.t_up @ u0 + (a.r_top * x[None, :]) @ (b.t_dn @ dtop))
-        d = (b.r_bot * x[None, :]) @ u + b.t_dn @ dtop
+        ra_x = a.r_top * x[None, :]
+        rb_x = b.r_bot * x[None, :]
+        tb_d = b.t_dn @ dtop
+        u = jnp.linalg.solve(one - ra_x @ rb_x, a.t_up @ u0 + ra_x @ tb_d)
+        d = rb_x @ u + tb_d
         modes.append(LayerModes(q=q, w=w, v=v, ez=z, up=u, down=d, z_bottom=z_b[j],
                                 thickness=thick[j]))
+    if n_lay:
+        d0 = ints[0].r_bot @ u0 + ints[0].t_dn @ (xs[0] * modes[0].down)
+        utop = ints[-1].t_up @ (xs[-1] * modes[-1].up) + ints[-1].r_top @ dtop
+    else:
+        d0 = ints[0].r_bot @ u0 + ints[0].t_dn @ dtop
+        utop = ints[0].t_up @ u0 + ints[0].r_top @ dtop
     qb, wb, vb, zb = media[0]
     qa, wa, va, za = media[-1]
     below = LayerModes(q=qb, w=wb, v=vb, ez=zb, up=u0, down=d0, z_bottom=jnp.asarray(0.0),
@@ -242,14 +254,13 @@ def _solve(lattice, layers, eps_below, eps_above, wavelength, theta, phi, psi, *
     # power balance through S_z in the outer media
     f_d0 = -_flux(d0, -(vb @ d0), m)
     f_up = _flux(utop, va @ utop, m)
-    if incidence == "above":
-        f_in = -_flux(dtop, -(va @ dtop), m)[g0]
-        refl, trans = f_up / f_in, f_d0 / f_in
-    else:
-        f_in = _flux(u0, vb @ u0, m)[g0]
-        refl, trans = f_d0 / f_in, f_up / f_in
+    f_in_above = -_flux(dtop, -(va @ dtop), m)[g0]
+    f_in_below = _flux(u0, vb @ u0, m)[g0]
+    f_in = jnp.where(above_, f_in_above, f_in_below)
+    refl = jnp.where(above_, f_up, f_d0) / f_in
+    trans = jnp.where(above_, f_d0, f_up) / f_in
     return FMMSolution(lattice=lattice, k0=k0, kx=kx, ky=ky, eps_below=eps_below,
                        eps_above=eps_above, below=below, layers=tuple(modes), above=above,
                        reflectance=jnp.sum(refl), transmittance=jnp.sum(trans),
                        reflected_orders=refl, transmitted_orders=trans, polarization=psi,
-                       orders=orders, incidence=incidence)
+                       from_above=above_.astype(float), orders=orders)
