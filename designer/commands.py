@@ -11,6 +11,7 @@ import sys
 
 from designer import io as vio
 from designer.errors import UsageError
+from designer.io import require_finite
 from designer.provenance import provenance
 
 
@@ -25,13 +26,22 @@ def _emit(args, result: dict, text: str) -> None:
 
 def run_beam(args) -> int:
     from designer import beam
+    from designer.materials import MAX_INDEX
+    from designer.spec import MAX_VOLTAGE_KV, MAX_WAVELENGTH_NM, MIN_VOLTAGE_KV, MIN_WAVELENGTH_NM
 
-    if not (args.voltage_kV > 0 and args.voltage_kV <= 10_000):
-        raise UsageError(f"--voltage-kV = {args.voltage_kV!r}: must be in (0, 10000]")
-    if not args.wavelength_nm > 0:
-        raise UsageError(f"--wavelength-nm = {args.wavelength_nm!r}: must be > 0")
-    if args.order < 1:
-        raise UsageError(f"--order = {args.order!r}: must be >= 1")
+    # the same ranges as the spec keys [beam] voltage_kV and [laser] wavelength_nm
+    if not MIN_VOLTAGE_KV <= args.voltage_kV <= MAX_VOLTAGE_KV:
+        raise UsageError(f"--voltage-kV = {args.voltage_kV!r}: must be within "
+                         f"[{MIN_VOLTAGE_KV:g}, {MAX_VOLTAGE_KV:g}]")
+    if not MIN_WAVELENGTH_NM <= args.wavelength_nm <= MAX_WAVELENGTH_NM:
+        raise UsageError(f"--wavelength-nm = {args.wavelength_nm!r}: must be within "
+                         f"[{MIN_WAVELENGTH_NM:g}, {MAX_WAVELENGTH_NM:g}]")
+    if args.order < 1 or args.order > 1000:
+        raise UsageError(f"--order = {args.order!r}: must be within [1, 1000]")
+    for n in args.index or []:
+        if not 0 < n <= MAX_INDEX:
+            raise UsageError(f"--index = {n!r}: must be a refractive index in (0, "
+                             f"{MAX_INDEX:g}]")
     e = beam.electron(args.voltage_kV * 1e3)
     lam = args.wavelength_nm * 1e-9
     result = {
@@ -117,25 +127,48 @@ def _caution(peak_field_V_per_m: float) -> list[str]:
             "threshold.", SAFETY_NOTE]
 
 
-def run_evaluate(args) -> int:
-    from designer.evaluate import evaluate, evaluation_json
-    from designer.spec import load_spec
+def check_outputs(args, outputs, inputs=()) -> None:
+    """Refuse bad output files before any work: ``outputs`` is ``[(flag, path, suffixes)]``
+    (see :func:`designer.io.check_output`); ``--overwrite`` allows replacing files."""
+    overwrite = bool(getattr(args, "overwrite", False))
+    for flag, path, suffixes in outputs:
+        if path:
+            vio.check_output(path, flag=flag, overwrite=overwrite, inputs=inputs,
+                             suffixes=suffixes)
+    vio.check_distinct([(flag, path) for flag, path, _ in outputs])
 
+
+def run_evaluate(args) -> int:
+    from designer import cost
+    from designer.evaluate import evaluate, evaluation_json
+    from designer.spec import input_files, load_spec
+
+    outputs = [("--out", args.out, None), ("--plot", args.plot, tuple(vio.FIGURE_SUFFIXES)),
+               ("--report", args.report, None)]
+    check_outputs(args, outputs, [args.spec])
     spec = load_spec(args.spec)
+    check_outputs(args, outputs, input_files(spec))
     if not args.json:
         print(f"evaluating {args.spec}", file=sys.stderr)
-    ev = evaluate(spec, progress=None if args.json else _status)
-    result = evaluation_json(ev)
-    if args.out:
-        vio.write_json(args.out, result)
+    say = None if args.json else _status
+    with cost.watch(say):
+        ev = evaluate(spec, progress=say)
+    result = require_finite(evaluation_json(ev), spec.source)
+    figure = report = None
     if args.plot:
         from designer.plots import evaluation_figure
 
-        vio.save_figure(evaluation_figure(ev), args.plot)
+        figure = evaluation_figure(ev)
     if args.report:
         from designer.report import evaluation_report
 
-        vio.write_atomic(args.report, evaluation_report(ev, result))
+        report = evaluation_report(ev, result)
+    if args.out:
+        vio.write_json(args.out, result)
+    if figure is not None:
+        vio.save_figure(figure, args.plot)
+    if report is not None:
+        vio.write_atomic(args.report, report)
     _emit(args, result, _coupling_text(result))
     return 0
 
@@ -184,13 +217,19 @@ def spectrum_of(ev) -> dict:
 
 
 def run_spectrum(args) -> int:
-    from designer import spectrum
+    from designer import cost, spectrum
     from designer.evaluate import evaluate
-    from designer.spec import load_spec
+    from designer.spec import input_files, load_spec
 
+    outputs = [("--plot", args.plot, tuple(vio.FIGURE_SUFFIXES))]
+    check_outputs(args, outputs, [args.spec])
     spec = load_spec(args.spec)
-    ev = evaluate(spec, refine=False, progress=None if args.json else _status)
+    check_outputs(args, outputs, input_files(spec))
+    say = None if args.json else _status
+    with cost.watch(say):
+        ev = evaluate(spec, refine=False, progress=say)
     result = spectrum_of(ev)
+    require_finite({k: v for k, v in result.items() if k != "_lines"}, spec.source)
     lines = result.pop("_lines")
     if args.plot:
         spectrum.plot_spectrum(args.plot, result["energy_eV"], result["density_per_eV"], lines,

@@ -485,9 +485,13 @@ def crosscheck_figure(result: Crosscheck):
 def crosscheck_command(args) -> int:
     """``velomatch crosscheck SPEC``: 0 when the solvers agree, 1 when not, 2 on errors."""
     from designer import io as vio
-    from designer.spec import load_spec
+    from designer.commands import check_outputs
+    from designer.spec import input_files, load_spec
 
+    outputs = [("--plot", getattr(args, "plot", None), tuple(vio.FIGURE_SUFFIXES))]
+    check_outputs(args, outputs, [args.spec])
     spec = load_spec(args.spec)
+    check_outputs(args, outputs, input_files(spec))
     quiet = bool(getattr(args, "json", False))
 
     tty = sys.stderr.isatty()
@@ -508,10 +512,10 @@ def crosscheck_command(args) -> int:
         sys.stderr.flush()
 
     resolution = getattr(args, "grid_step_nm", None)
-    if resolution is not None and not resolution > 0:
+    if resolution is not None and not (math.isfinite(resolution) and resolution > 0):
         raise CrosscheckError(f"--grid-step-nm = {resolution!r}: must be > 0")
     max_wall = float(getattr(args, "max_wall_s", 900.0))
-    if not max_wall > 0:
+    if not (math.isfinite(max_wall) and max_wall > 0):
         raise CrosscheckError(f"--max-wall-s = {max_wall!r}: must be > 0")
     if not quiet:
         print(f"cross-checking {args.spec} (FDFD against Meep FDTD)", file=sys.stderr)

@@ -470,5 +470,7 @@ def evaluation_json(ev: Evaluation) -> dict:
 
 def evaluate_raw(raw: dict, *, source: str = "<spec>", base_dir=None, **options) -> dict:
     """Parse a raw spec tree and return the ``evaluate`` JSON object (for sweeps)."""
+    from designer.io import require_finite
+
     spec = parse_spec(raw, source=source, base_dir=base_dir)
-    return evaluation_json(evaluate(spec, **options))
+    return require_finite(evaluation_json(evaluate(spec, **options)), source)

@@ -160,6 +160,6 @@ def plot_spectrum(path, energy_eV, density, lines: LineSpectrum | None = None, t
         ax.set_title(title)
     ax.legend(frameon=False)
     fig.tight_layout()
-    fig.savefig(path, dpi=120)
-    plt.close(fig)
-    return path
+    from designer.io import save_figure
+
+    return save_figure(fig, path)

@@ -453,9 +453,8 @@ class SweepResult:
 
 def _prepare_sweep_dir(out_dir: Path, plan: SweepPlan) -> bool:
     """Create or re-open a sweep folder; True when resuming."""
-    if out_dir.exists() and not out_dir.is_dir():
-        raise UsageError(f"{out_dir}: exists and is not a folder")
-    if out_dir.exists() and any(out_dir.iterdir()):
+    vio.open_output_dir(out_dir)   # checked, created and locked for the whole run
+    if vio.folder_entries(out_dir):
         plan_path = out_dir / PLAN_FILE
         try:
             stored = _load_json(plan_path)
@@ -469,7 +468,6 @@ def _prepare_sweep_dir(out_dir: Path, plan: SweepPlan) -> bool:
             raise UsageError(f"{out_dir}: holds a different sweep ({what}); it is not "
                              "overwritten — choose another --out or remove the folder")
         return True
-    out_dir.mkdir(parents=True, exist_ok=True)
     return False
 
 
@@ -505,7 +503,7 @@ def run_sweep(plan: SweepPlan, out_dir: str | os.PathLike, *,
     points_dir.mkdir(exist_ok=True)
     if not resuming:
         vio.write_json(out_dir / PLAN_FILE, {"sweep_sha256": plan.sha256, **plan.identity()})
-        _write_base_spec(out_dir / SPEC_FILE, plan.base_raw)
+        _write_base_spec(out_dir / SPEC_FILE, plan.base_raw, plan.base_dir)
 
     values = plan.point_values()
     raws = [point_raw(plan.base_raw, v) for v in values]
@@ -548,10 +546,10 @@ def run_sweep(plan: SweepPlan, out_dir: str | os.PathLike, *,
                        failed=failed, out_dir=out_dir, files=files)
 
 
-def _write_base_spec(path: Path, raw: dict) -> None:
-    from designer.spec import dump_spec
+def _write_base_spec(path: Path, raw: dict, base_dir=None) -> None:
+    from designer.spec import dump_spec, with_absolute_files
 
-    vio.write_atomic(path, dump_spec(raw))
+    vio.write_atomic(path, dump_spec(with_absolute_files(raw, base_dir)))
 
 
 def sweep_json(plan: SweepPlan, values: list[dict], shas: list[str],
