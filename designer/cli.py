@@ -140,6 +140,14 @@ def main(argv: list[str] | None = None) -> int:
     except VelomatchError as exc:
         print(f"velomatch {args.command}: error: {exc}", file=sys.stderr)
         return exc.exit_code
+    except ValueError as exc:
+        # what the physics refuses (grid too coarse for the wavelength, a path outside
+        # the grid, ...): the same one-line report a sweep records for such a point
+        text = str(exc).replace("pass force=True to override", "set [solver] force = true "
+                                "to override").splitlines()
+        print(f"velomatch {args.command}: error: {text[0] if text else type(exc).__name__}",
+              file=sys.stderr)
+        return 2
     except MemoryError:
         print(f"velomatch {args.command}: error: out of memory (the up-front estimate was "
               "too low); use a coarser [solver] grid_step_nm", file=sys.stderr)

@@ -386,18 +386,69 @@ def _run_pool(jobs, evaluator, n_workers: int, done) -> None:
 
     # spawn, not fork: the parent may already run JAX's threads
     ctx = mp.get_context("spawn")
-    init = _one_thread_each if n_workers > 1 else None
-    with ProcessPoolExecutor(max_workers=n_workers, mp_context=ctx, initializer=init) as pool:
-        futures = {pool.submit(evaluate_job, evaluator, job): i for i, job in enumerate(jobs)}
+    pool = ProcessPoolExecutor(max_workers=n_workers, mp_context=ctx, initializer=_worker_init,
+                               initargs=(os.getpid(), n_workers > 1))
+    futures = {pool.submit(evaluate_job, evaluator, job): i for i, job in enumerate(jobs)}
+    pending = set(futures)
+    try:
+        while pending:
+            finished, pending = wait(pending, return_when=FIRST_COMPLETED)
+            for fut in finished:
+                done(futures[fut], fut.result())
+    except BaseException:
+        # interrupted (Ctrl-C) or failed: keep what has finished, stop the rest now
+        # instead of waiting for the points in flight
+        for fut in list(pending):
+            if fut.done() and not fut.cancelled() and fut.exception() is None:
+                done(futures[fut], fut.result())
+        _stop_pool(pool)
+        raise
+    pool.shutdown(wait=True)
+
+
+def _stop_pool(pool) -> None:
+    processes = list(getattr(pool, "_processes", {}).values())
+    pool.shutdown(wait=False, cancel_futures=True)
+    for proc in processes:
         try:
-            pending = set(futures)
-            while pending:
-                finished, pending = wait(pending, return_when=FIRST_COMPLETED)
-                for fut in finished:
-                    done(futures[fut], fut.result())
-        except BaseException:
-            pool.shutdown(wait=True, cancel_futures=True)
-            raise
+            proc.terminate()
+        except (OSError, AttributeError):
+            pass
+    for proc in processes:
+        try:
+            proc.join(timeout=2.0)
+        except (OSError, AssertionError):
+            pass
+
+
+def _worker_init(parent_pid: int, one_thread: bool) -> None:
+    """Pool initializer: die with the parent (a sweep killed with SIGKILL must not leave
+    its workers behind), leave Ctrl-C to the parent, and optionally one thread each."""
+    import signal
+    import threading
+
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    try:  # Linux: the kernel sends SIGKILL when the parent dies
+        import ctypes
+
+        libc = ctypes.CDLL(None, use_errno=True)
+        libc.prctl(1, signal.SIGKILL, 0, 0, 0)   # PR_SET_PDEATHSIG
+    except (OSError, AttributeError):
+        pass
+    if os.getppid() != parent_pid:
+        os._exit(1)
+
+    def watch():   # elsewhere (and as a second line): poll the parent's pid
+        import time
+
+        while True:
+            time.sleep(1.0)
+            if os.getppid() != parent_pid:
+                os._exit(1)
+
+    threading.Thread(target=watch, daemon=True, name="velomatch-parent-watch").start()
+    if one_thread:
+        _one_thread_each()
 
 
 def _one_thread_each() -> None:
