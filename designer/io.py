@@ -7,6 +7,7 @@ interrupted run never leaves a half-written file and never clobbers a good one.
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import hashlib
 import json
 import math
@@ -45,6 +46,8 @@ def to_jsonable(obj: Any) -> Any:
         return value if math.isfinite(value) else None
     if isinstance(obj, Path):
         return str(obj)
+    if dataclasses.is_dataclass(obj) and not isinstance(obj, type):
+        return to_jsonable({f.name: getattr(obj, f.name) for f in dataclasses.fields(obj)})
     if hasattr(obj, "__array__") and not isinstance(obj, (str, bytes)):
         return to_jsonable(np.asarray(obj))
     return obj

@@ -102,7 +102,7 @@ def refused(result, *words, rc=2):
 
 
 def one_line(result, *words, rc=2):
-    """Refused with exactly one line on stderr (commands run with --json: no progress)."""
+    """Refused with exactly one line on stderr (refusals before any work: no progress)."""
     line = refused(result, *words, rc=rc)
     assert result[2].strip() == line, result[2]
     return line
@@ -224,8 +224,10 @@ def test_memory_refusal_is_quick_and_small(tmp_path):
                           "--json"], capture_output=True, text=True, timeout=120)
     head, *err = got.stdout.splitlines()
     rc, seconds, rss_kb = head.split()
-    assert int(rc) == 2 and len(err) == 1, got.stdout
-    assert "grid_step_nm" in err[0] and "available" in err[0] and "--force" in err[0]
+    errors = [line for line in err if ": error: " in line]
+    assert int(rc) == 2 and len(errors) == 1 and errors[0] == err[-1], got.stdout
+    assert "Traceback" not in got.stdout
+    assert "grid_step_nm" in err[-1] and "available" in err[-1] and "--force" in err[-1]
     assert float(seconds) < 30.0          # imports included, on a loaded 2-core machine
     assert int(rss_kb) < 1_000_000        # ru_maxrss is in kB on Linux
 
@@ -430,7 +432,7 @@ def test_grid_so_coarse_that_both_error_grids_coincide(tmp_path):
 
 def test_coarse_fdfd_film_is_one_line(tmp_path):
     spec = film(tmp_path, extra='[solver]\nmethod = "fdfd"\ngrid_step_nm = 100.0\n')
-    one_line(cli("evaluate", spec, "--json"), "cells per wavelength", "[solver] force")
+    refused(cli("evaluate", spec, "--json"), "cells per wavelength", "[solver] force")
 
 
 def test_corrupted_checkpoint_on_resume(tmp_path):
