@@ -21,6 +21,10 @@ from 4 × 2000 to 1000 × 1000, ``studies/benchmarks/fdfd_memory.py``):
 * time ``≈ 1e-7 s per LU entry`` on one core of the 2-core development machine (an
   order of magnitude, not a promise).
 
+Against the benchmark (quick mode, 5 shapes) the estimate is 1.2-1.6 times the
+measured fill and 1.7-2.0 times the measured rise of the resident set: it errs on the
+side of refusing.
+
 The available memory is ``MemAvailable`` of ``/proc/meminfo`` (or psutil), reduced to
 the cgroup's limit when one is set.  ``--force`` on the command line (environment
 ``VELOMATCH_FORCE=1``, inherited by local sweep workers) skips the refusal.

@@ -430,6 +430,16 @@ def test_grid_so_coarse_that_both_error_grids_coincide(tmp_path):
     assert json.loads(out)["coupling"]["relative_error_estimate"] is None
 
 
+def test_sweep_over_coarse_grid_steps_completes(tmp_path):
+    spec = tmp_path / "g.toml"
+    spec.write_text(GRATING.replace("STEP", "100.0"))
+    rc, out, err = cli("sweep", spec, "--vary", "solver.grid_step_nm=100:200:2", "--out",
+                       tmp_path / "sw", "--workers", "0")
+    assert rc == 0 and "Traceback" not in err, err
+    points = json.loads((tmp_path / "sw" / "sweep.json").read_text())["points"]
+    assert len(points) == 2 and not any(p.get("error") for p in points)
+
+
 def test_coarse_fdfd_film_is_one_line(tmp_path):
     spec = film(tmp_path, extra='[solver]\nmethod = "fdfd"\ngrid_step_nm = 100.0\n')
     refused(cli("evaluate", spec, "--json"), "cells per wavelength", "[solver] force")

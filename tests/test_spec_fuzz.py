@@ -3,9 +3,9 @@
 Random bytes, random and mutated TOML documents and random option values go through
 the readers the commands use (spec files; ``[optimize]`` for design, ``[layout]`` for
 export, ``--vary`` for sweep, the options of beam).  Property: each input ends in a
-valid result or in one :class:`~designer.errors.VelomatchError` (a SpecError for spec content) whose message
-is a single line — never another exception.  Common practice (fuzzing a parser's
-error path), no source.  Bounded: fixed example counts, no deadline.
+valid result or in one :class:`~designer.errors.VelomatchError` (a SpecError for spec
+content) whose message is a single line — never another exception.  Common practice
+(fuzzing a parser's error path), no source.  Bounded: fixed example counts, no deadline.
 """
 
 import copy
