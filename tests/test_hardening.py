@@ -178,11 +178,21 @@ def test_export_with_a_bad_preview_writes_nothing(tmp_path):
 
 @pytest.mark.parametrize("command", ["design", "sweep", "compare"])
 def test_output_folders_under_a_file_or_in_proc(tmp_path, command):
-    spec = film(tmp_path)
+    spec = film(tmp_path, extra="[optimize]\nvariables = { thickness_nm = [50.0, 150.0] }\n")
     extra = ["--vary", "laser.angle_deg=0:10:2"] if command == "sweep" else []
     before = snapshot(tmp_path)
     for out in (spec / "run", "/proc/velomatch-run", spec):
         refused(cli(command, spec, "--out", out, *extra))
+    assert snapshot(tmp_path) == before
+
+
+def test_crosscheck_and_demo_outputs_are_checked_first(tmp_path):
+    spec = film(tmp_path)
+    before = snapshot(tmp_path)
+    one_line(cli("crosscheck", spec, "--json", "--plot", "/proc/cc.png"), "/proc")
+    one_line(cli("crosscheck", spec, "--json", "--plot", spec / "cc.png"), "not a folder")
+    one_line(cli("demo", "--out", "/proc/velomatch-demo"), "/proc")
+    one_line(cli("demo", "--out", spec), "not a folder")
     assert snapshot(tmp_path) == before
 
 
@@ -319,11 +329,11 @@ def test_beam_options_out_of_range(args, word):
 # 3. finite results or failure
 # ---------------------------------------------------------------------------------
 def test_fine_fdfd_film_is_finite_and_matches_the_exact_stack(tmp_path):
-    """At a 2 nm step the evanescent Floquet orders of the 4-cell Bloch cell have
+    """At a 0.5 nm step the evanescent Floquet orders of the 4-cell Bloch cell have
     |Im kz| large enough to overflow exp() across the box (NaN before the fix).
     Reference: the exact transfer-matrix solution of the same film (solvers.layers,
     checked against M. Born & E. Wolf, Principles of Optics, ch. 1); tolerance 1 %."""
-    spec = film(tmp_path, extra='[solver]\nmethod = "fdfd"\ngrid_step_nm = 2.0\n'
+    spec = film(tmp_path, extra='[solver]\nmethod = "fdfd"\ngrid_step_nm = 0.5\n'
                                 "refine = false\n")
     exact = film(tmp_path, "exact.toml", extra='[solver]\nmethod = "layers"\n')
     rc, out, err = cli("evaluate", spec, "--json")
