@@ -940,7 +940,8 @@ def write_outputs(result: DesignResult, out_dir: str | Path, *, status=None) -> 
     if ev.solver == "fdfd":
         fine = ev.run.grid_step_m / p.config.refine_factor
         say(f"re-evaluating at {fine * 1e9:.3g} nm")
-        refined = evaluation_json(evaluate(design_spec, grid_step_m=fine, refine=True))
+        refined = vio.require_finite(evaluation_json(evaluate(design_spec, grid_step_m=fine,
+                                                            refine=True)))
         refined["note"] = (f"step {fine:.4g} m = evaluation step / {p.config.refine_factor:g}; "
                            "relative_error_estimate from a second solve at 1.5x that step")
     else:
@@ -948,7 +949,7 @@ def write_outputs(result: DesignResult, out_dir: str | Path, *, status=None) -> 
         refined["note"] = "exact layer-stack solution: no finer grid exists (error 0)"
     vio.write_json(out / "refined.json", refined)
     say("evaluating the start design")
-    start_eval = evaluation_json(evaluate(spec, refine=False))
+    start_eval = vio.require_finite(evaluation_json(evaluate(spec, refine=False)))
     data, text = comparison(result, start_eval, design_eval)
     data["refined"] = {"grid_step_m": refined["provenance"].get("grid_step_m"),
                        "beta_c_per_field_m_per_V":
