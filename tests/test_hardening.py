@@ -242,6 +242,18 @@ def test_memory_refusal_is_quick_and_small(tmp_path):
     assert int(rss_kb) < 1_000_000        # ru_maxrss is in kB on Linux
 
 
+def test_force_overrides_the_memory_refusal(tmp_path, monkeypatch):
+    from designer import cost
+
+    monkeypatch.setattr(cost, "available_memory", lambda: (1e6, "a test's small machine"))
+    spec = film(tmp_path, extra='[solver]\nmethod = "fdfd"\ngrid_step_nm = 5.0\n'
+                                "refine = false\n")
+    refused(cli("evaluate", spec, "--json"), "small machine", "--force")
+    rc, out, err = cli("evaluate", spec, "--json", "--force")
+    assert rc == 0, err
+    assert "VELOMATCH_FORCE" not in os.environ   # --force does not outlive the command
+
+
 def test_cost_model_brackets_the_measured_superlu_fill():
     """The fill model against SciPy SuperLU on the operator it models (scipy itself is
     the reference; tolerance: within 0.8 to 2 times the measured fill)."""
