@@ -522,10 +522,13 @@ def crosscheck_command(args) -> int:
     result = crosscheck(spec, grid_step_m=None if resolution is None else resolution * 1e-9,
                         tolerance=float(getattr(args, "tolerance", DEFAULT_TOLERANCE)),
                         max_wall_s=max_wall, progress=status)
+    data = crosscheck_json(result, spec)
+    if result.agree:   # a pass (exit 0) is never reported on NaN or infinite figures
+        vio.require_finite(data, spec.source)
     if getattr(args, "plot", None):
         vio.save_figure(crosscheck_figure(result), args.plot)
     if quiet:
-        print(vio.dumps(crosscheck_json(result, spec)))
+        print(vio.dumps(data))
     else:
         print(crosscheck_text(result))
     return 0 if result.agree else 1
