@@ -107,8 +107,11 @@ def run_materials(args) -> int:
 
     lam = None
     if args.wavelength_nm is not None:
-        if not args.wavelength_nm > 0:
-            raise UsageError(f"--wavelength-nm = {args.wavelength_nm!r}: must be > 0")
+        from designer.spec import MAX_WAVELENGTH_NM, MIN_WAVELENGTH_NM
+
+        if not MIN_WAVELENGTH_NM <= args.wavelength_nm <= MAX_WAVELENGTH_NM:
+            raise UsageError(f"--wavelength-nm = {args.wavelength_nm!r}: must be within "
+                             f"[{MIN_WAVELENGTH_NM:g}, {MAX_WAVELENGTH_NM:g}]")
         lam = args.wavelength_nm * 1e-9
     names_for = {}
     for alias, name in aliases().items():

@@ -337,6 +337,11 @@ def test_beam_options_out_of_range(args, word):
     one_line(cli("beam", *args, "--json"), word)
 
 
+@pytest.mark.parametrize("value", ["1e300", "1e-300", "inf", "nan", "-5"])
+def test_materials_wavelength_out_of_range(value):
+    one_line(cli("materials", "--wavelength-nm", value, "--json"), "--wavelength-nm")
+
+
 # ---------------------------------------------------------------------------------
 # 3. finite results or failure
 # ---------------------------------------------------------------------------------
