@@ -387,6 +387,24 @@ def release_output_dirs() -> None:
                     break
 
 
+@contextlib.contextmanager
+def output_session():
+    """Release the folder locks taken inside the block when it ends (the CLI does this
+    per command; Python callers of the commands' functions wrap each call in it)."""
+    held = len(_HELD)
+    try:
+        yield
+    finally:
+        newer = _HELD[held:]
+        del _HELD[held:]
+        outer = list(_HELD)
+        _HELD[:] = newer
+        try:
+            release_output_dirs()
+        finally:
+            _HELD[:] = outer
+
+
 def prepare_output_dir(path: str | os.PathLike, *, overwrite: bool = False,
                        resume: bool = False, inputs=(), names=()) -> Path:
     """Check, create and lock an output folder; refuse a non-empty one unless asked.

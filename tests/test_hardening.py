@@ -446,6 +446,22 @@ def test_second_run_into_a_locked_folder_names_the_holder(tmp_path):
     assert holder.returncode == 0
 
 
+def test_output_session_releases_only_its_own_locks(tmp_path):
+    from designer import io as vio
+
+    def held():
+        return [folder for _, folder, _ in vio._HELD]
+
+    before = held()   # other tests in this process may hold folders of their own
+    with vio.output_session():
+        vio.open_output_dir(tmp_path / "outer")
+        with vio.output_session():
+            vio.open_output_dir(tmp_path / "inner")
+        assert not (tmp_path / "inner").exists()     # created, left empty: removed
+        assert held() == before + [tmp_path / "outer"]
+    assert held() == before and not (tmp_path / "outer").exists()
+
+
 # ---------------------------------------------------------------------------------
 # 6. one line instead of a traceback
 # ---------------------------------------------------------------------------------
