@@ -19,6 +19,13 @@ def _add_json(p: argparse.ArgumentParser) -> None:
     p.add_argument("--json", action="store_true", help="print machine-readable JSON on stdout")
 
 
+def _add_overwrite_force(p: argparse.ArgumentParser, overwrite: bool = True) -> None:
+    if overwrite:
+        p.add_argument("--overwrite", action="store_true", help="replace existing output files")
+    p.add_argument("--force", action="store_true", help="solve even when the up-front cost "
+                   "estimate exceeds the machine's available memory")
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="velomatch",
@@ -51,11 +58,13 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--plot", metavar="FILE", help="write a picture of the sample and fields")
     p.add_argument("--report", metavar="FILE", help="write a self-contained HTML report")
     p.add_argument("--out", metavar="FILE", help="also write the JSON result to FILE")
+    _add_overwrite_force(p)
 
     p = sub.add_parser("spectrum", help="predicted PINEM spectrum of the sample in a spec")
     p.add_argument("spec", help="spec file (TOML)")
     _add_json(p)
     p.add_argument("--plot", metavar="FILE", help="write the spectrum plot (PNG/SVG)")
+    _add_overwrite_force(p)
 
     p = sub.add_parser("design", help="optimize the geometry of a spec's sample")
     p.add_argument("spec", help="spec file (TOML) with an [optimize] table")
@@ -64,6 +73,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--resume", action="store_true", help="continue the run saved in DIR")
     p.add_argument("--overwrite", action="store_true", help="replace results in a non-empty DIR")
     p.add_argument("--iterations", type=int, help="override [optimize] iterations")
+    _add_overwrite_force(p, overwrite=False)
 
     p = sub.add_parser("sweep", help="vary spec keys over a grid of values")
     p.add_argument("spec", help="spec file (TOML): the point every variation starts from")
@@ -74,6 +84,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--scheduler", metavar="ADDRESS", help="Dask scheduler (tcp://HOST:PORT)")
     p.add_argument("--workers", type=int, help="local worker processes (default: automatic — "
                    "this process for quick sweeps, else one per core; 0 = this process)")
+    _add_overwrite_force(p, overwrite=False)
 
     p = sub.add_parser("compare", help="rank candidate samples on the same footing")
     p.add_argument("specs", nargs="+", metavar="spec",
@@ -83,6 +94,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--scheduler", metavar="ADDRESS", help="Dask scheduler (tcp://HOST:PORT)")
     p.add_argument("--workers", type=int, help="local worker processes (default: automatic)")
     p.add_argument("--overwrite", action="store_true", help="replace results in a non-empty DIR")
+    _add_overwrite_force(p, overwrite=False)
 
     p = sub.add_parser("crosscheck", help="confirm the coupling with the FDTD solver (Meep)")
     p.add_argument("spec", help="spec file (TOML), e.g. a design.toml")
@@ -93,6 +105,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="give up after this many seconds (default 900)")
     p.add_argument("--tolerance", type=float, default=0.02, help="relative tolerance (0.02)")
     p.add_argument("--plot", metavar="FILE", help="write both field profiles along the path")
+    _add_overwrite_force(p)
 
     p = sub.add_parser("export", help="write a lithography layout (GDSII/OASIS)")
     p.add_argument("spec", help="spec file (TOML) with an optional [layout] table")
@@ -129,13 +142,29 @@ def main(argv: list[str] | None = None) -> int:
 
     configure_jax_cache()
     from designer import commands
+    from designer.io import release_output_dirs
 
     handler = getattr(commands, "run_" + args.command)
+    forced = os.environ.get("VELOMATCH_FORCE")
+    if getattr(args, "force", False):
+        os.environ["VELOMATCH_FORCE"] = "1"   # read by designer.cost, inherited by workers
     try:
         return int(handler(args) or 0)
     except VelomatchError as exc:
         print(f"velomatch {args.command}: error: {exc}", file=sys.stderr)
         return exc.exit_code
+    except ValueError as exc:
+        # what the physics refuses (grid too coarse for the wavelength, a path outside
+        # the grid, ...): the same one-line report a sweep records for such a point
+        text = str(exc).replace("pass force=True to override", "set [solver] force = true "
+                                "to override").splitlines()
+        print(f"velomatch {args.command}: error: {text[0] if text else type(exc).__name__}",
+              file=sys.stderr)
+        return 2
+    except MemoryError:
+        print(f"velomatch {args.command}: error: out of memory (the up-front estimate was "
+              "too low); use a coarser [solver] grid_step_nm", file=sys.stderr)
+        return 2
     except KeyboardInterrupt:
         print(f"velomatch {args.command}: interrupted", file=sys.stderr)
         return 130
@@ -143,6 +172,12 @@ def main(argv: list[str] | None = None) -> int:
         devnull = os.open(os.devnull, os.O_WRONLY)
         os.dup2(devnull, sys.stdout.fileno())
         return 1
+    finally:
+        release_output_dirs()
+        if forced is None:
+            os.environ.pop("VELOMATCH_FORCE", None)
+        else:
+            os.environ["VELOMATCH_FORCE"] = forced
 
 
 if __name__ == "__main__":

@@ -11,6 +11,7 @@ import sys
 
 from designer import io as vio
 from designer.errors import UsageError
+from designer.io import require_finite
 from designer.provenance import provenance
 
 
@@ -25,13 +26,22 @@ def _emit(args, result: dict, text: str) -> None:
 
 def run_beam(args) -> int:
     from designer import beam
+    from designer.materials import MAX_INDEX
+    from designer.spec import MAX_VOLTAGE_KV, MAX_WAVELENGTH_NM, MIN_VOLTAGE_KV, MIN_WAVELENGTH_NM
 
-    if not (args.voltage_kV > 0 and args.voltage_kV <= 10_000):
-        raise UsageError(f"--voltage-kV = {args.voltage_kV!r}: must be in (0, 10000]")
-    if not args.wavelength_nm > 0:
-        raise UsageError(f"--wavelength-nm = {args.wavelength_nm!r}: must be > 0")
-    if args.order < 1:
-        raise UsageError(f"--order = {args.order!r}: must be >= 1")
+    # the same ranges as the spec keys [beam] voltage_kV and [laser] wavelength_nm
+    if not MIN_VOLTAGE_KV <= args.voltage_kV <= MAX_VOLTAGE_KV:
+        raise UsageError(f"--voltage-kV = {args.voltage_kV!r}: must be within "
+                         f"[{MIN_VOLTAGE_KV:g}, {MAX_VOLTAGE_KV:g}]")
+    if not MIN_WAVELENGTH_NM <= args.wavelength_nm <= MAX_WAVELENGTH_NM:
+        raise UsageError(f"--wavelength-nm = {args.wavelength_nm!r}: must be within "
+                         f"[{MIN_WAVELENGTH_NM:g}, {MAX_WAVELENGTH_NM:g}]")
+    if args.order < 1 or args.order > 1000:
+        raise UsageError(f"--order = {args.order!r}: must be within [1, 1000]")
+    for n in args.index or []:
+        if not 0 < n <= MAX_INDEX:
+            raise UsageError(f"--index = {n!r}: must be a refractive index in (0, "
+                             f"{MAX_INDEX:g}]")
     e = beam.electron(args.voltage_kV * 1e3)
     lam = args.wavelength_nm * 1e-9
     result = {
@@ -97,8 +107,11 @@ def run_materials(args) -> int:
 
     lam = None
     if args.wavelength_nm is not None:
-        if not args.wavelength_nm > 0:
-            raise UsageError(f"--wavelength-nm = {args.wavelength_nm!r}: must be > 0")
+        from designer.spec import MAX_WAVELENGTH_NM, MIN_WAVELENGTH_NM
+
+        if not MIN_WAVELENGTH_NM <= args.wavelength_nm <= MAX_WAVELENGTH_NM:
+            raise UsageError(f"--wavelength-nm = {args.wavelength_nm!r}: must be within "
+                             f"[{MIN_WAVELENGTH_NM:g}, {MAX_WAVELENGTH_NM:g}]")
         lam = args.wavelength_nm * 1e-9
     names_for = {}
     for alias, name in aliases().items():
@@ -211,24 +224,46 @@ def _caution(peak_field_V_per_m: float) -> list[str]:
     return caution_lines(peak_field_V_per_m)
 
 
-def run_evaluate(args) -> int:
-    from designer.evaluate import evaluate, evaluation_json
-    from designer.spec import load_spec
+def check_outputs(args, outputs, inputs=()) -> None:
+    """Refuse bad output files before any work: ``outputs`` is ``[(flag, path, suffixes)]``
+    (see :func:`designer.io.check_output`); ``--overwrite`` allows replacing files."""
+    overwrite = bool(getattr(args, "overwrite", False))
+    for flag, path, suffixes in outputs:
+        if path:
+            vio.check_output(path, flag=flag, overwrite=overwrite, inputs=inputs,
+                             suffixes=suffixes)
+    vio.check_distinct([(flag, path) for flag, path, _ in outputs])
 
+
+def run_evaluate(args) -> int:
+    from designer import cost
+    from designer.evaluate import evaluate, evaluation_json
+    from designer.spec import input_files, load_spec
+
+    outputs = [("--out", args.out, None), ("--plot", args.plot, tuple(vio.FIGURE_SUFFIXES)),
+               ("--report", args.report, None)]
+    check_outputs(args, outputs, [args.spec])
     spec = load_spec(args.spec)
+    check_outputs(args, outputs, input_files(spec))
     print(f"evaluating {args.spec}", file=sys.stderr)
-    ev = evaluate(spec, progress=_status)
-    result = evaluation_json(ev)
-    if args.out:
-        vio.write_json(args.out, result)
+    with cost.watch(_status):
+        ev = evaluate(spec, progress=_status)
+    result = require_finite(evaluation_json(ev), spec.source)
+    figure = report = None
     if args.plot:
         from designer.plots import evaluation_figure
 
-        vio.save_figure(evaluation_figure(ev), args.plot)
+        figure = evaluation_figure(ev)
     if args.report:
         from designer.report import evaluation_report
 
-        vio.write_atomic(args.report, evaluation_report(ev, result))
+        report = evaluation_report(ev, result)
+    if args.out:
+        vio.write_json(args.out, result)
+    if figure is not None:
+        vio.save_figure(figure, args.plot)
+    if report is not None:
+        vio.write_atomic(args.report, report)
     _emit(args, result, _coupling_text(result))
     return 0
 
@@ -308,12 +343,18 @@ def spectrum_picture(path, result: dict, lines) -> None:
 
 
 def run_spectrum(args) -> int:
+    from designer import cost
     from designer.evaluate import evaluate
-    from designer.spec import load_spec
+    from designer.spec import input_files, load_spec
 
+    outputs = [("--plot", args.plot, tuple(vio.FIGURE_SUFFIXES))]
+    check_outputs(args, outputs, [args.spec])
     spec = load_spec(args.spec)
-    ev = evaluate(spec, refine=False, progress=_status)
+    check_outputs(args, outputs, input_files(spec))
+    with cost.watch(_status):
+        ev = evaluate(spec, refine=False, progress=_status)
     result, lines = spectrum_result(ev)
+    require_finite(result, spec.source)
     if args.plot:
         spectrum_picture(args.plot, result, lines)
     strongest = sorted(zip(lines.orders, lines.probability), key=lambda t: -t[1])[:5]

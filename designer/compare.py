@@ -556,10 +556,13 @@ def compare_report(data: dict) -> rp.Report:
 def compare_command(args, *, evaluator: Callable = _default_evaluator,
                     workers: int | None = None) -> int:
     """``velomatch compare``: evaluate, rank, write compare.json and report.html."""
-    from designer.spec import load_spec
+    from designer.spec import input_files, load_spec
 
-    out_dir = vio.prepare_output_dir(args.out, overwrite=getattr(args, "overwrite", False))
+    vio.check_output(args.out, folder=True)
     specs = [load_spec(p) for p in args.specs]
+    out_dir = vio.prepare_output_dir(args.out, overwrite=getattr(args, "overwrite", False),
+                                     inputs=[f for s in specs for f in input_files(s)],
+                                     names=("compare.json", "report.html"))
     candidates, footing = make_candidates(specs)
     data = compare_candidates(candidates, footing, evaluator=evaluator,
                               workers=getattr(args, "workers", workers),

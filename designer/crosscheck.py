@@ -491,9 +491,13 @@ def crosscheck_figure(result: Crosscheck):
 def crosscheck_command(args) -> int:
     """``velomatch crosscheck SPEC``: 0 when the solvers agree, 1 when not, 2 on errors."""
     from designer import io as vio
-    from designer.spec import load_spec
+    from designer.commands import check_outputs
+    from designer.spec import input_files, load_spec
 
+    outputs = [("--plot", getattr(args, "plot", None), tuple(vio.FIGURE_SUFFIXES))]
+    check_outputs(args, outputs, [args.spec])
     spec = load_spec(args.spec)
+    check_outputs(args, outputs, input_files(spec))
     quiet = bool(getattr(args, "json", False))
 
     tty = sys.stderr.isatty()
@@ -514,20 +518,23 @@ def crosscheck_command(args) -> int:
         sys.stderr.flush()
 
     resolution = getattr(args, "grid_step_nm", None)
-    if resolution is not None and not resolution > 0:
+    if resolution is not None and not (math.isfinite(resolution) and resolution > 0):
         raise CrosscheckError(f"--grid-step-nm = {resolution!r}: must be > 0")
     max_wall = float(getattr(args, "max_wall_s", 900.0))
-    if not max_wall > 0:
+    if not (math.isfinite(max_wall) and max_wall > 0):
         raise CrosscheckError(f"--max-wall-s = {max_wall!r}: must be > 0")
     if not quiet:
         print(f"cross-checking {args.spec} (FDFD against Meep FDTD)", file=sys.stderr)
     result = crosscheck(spec, grid_step_m=None if resolution is None else resolution * 1e-9,
                         tolerance=float(getattr(args, "tolerance", DEFAULT_TOLERANCE)),
                         max_wall_s=max_wall, progress=status)
+    data = crosscheck_json(result, spec)
+    if result.agree:   # a pass (exit 0) is never reported on NaN or infinite figures
+        vio.require_finite(data, spec.source)
     if getattr(args, "plot", None):
         vio.save_figure(crosscheck_figure(result), args.plot)
     if quiet:
-        print(vio.dumps(crosscheck_json(result, spec)))
+        print(vio.dumps(data))
     else:
         print(crosscheck_text(result))
     return 0 if result.agree else 1

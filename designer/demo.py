@@ -111,10 +111,10 @@ def prepare_study_dir(path: str | Path, *, overwrite: bool = False) -> Path:
     earlier study files without ``overwrite``.
     """
     out = Path(path)
-    if out.exists() and not out.is_dir():
-        raise UsageError(f"{out}: exists and is not a folder")
+    vio.open_output_dir(out)   # checked, created and locked for the whole run
     if out.exists():
-        present = {p.relative_to(out).as_posix() for p in out.rglob("*") if p.is_file()}
+        present = {p.relative_to(out).as_posix() for p in out.rglob("*")
+                   if p.is_file() and not vio.is_bookkeeping(p.name)}
         manifest = out / MANIFEST
         ours: set[str] = set()
         if manifest.is_file():
@@ -186,7 +186,7 @@ def study_script(main) -> int:
 def write_manifest(out: Path) -> list[str]:
     """List every file under ``out`` in the manifest (what ``--overwrite`` may replace)."""
     files = sorted(p.relative_to(out).as_posix() for p in out.rglob("*")
-                   if p.is_file() and p.name != MANIFEST)
+                   if p.is_file() and p.name != MANIFEST and not vio.is_bookkeeping(p.name))
     vio.write_json(out / MANIFEST, {"files": files})
     return files
 

@@ -667,6 +667,24 @@ def measured_features(problem: DesignProblem, pattern) -> tuple[float, float]:
                              [k * h for k in range(1, n + 1)], periodic_x=c.periodic_x)
 
 
+def _corrupt(path: Path, what: str) -> UsageError:
+    return UsageError(f"{path}: damaged checkpoint ({what}); start afresh with --overwrite "
+                      "instead of --resume")
+
+
+def _read_checkpoint(path: Path) -> dict:
+    """The saved checkpoint, or one UsageError when it is unreadable or incomplete."""
+    try:
+        saved = json.loads(vio.decode_text(vio.read_input(path, limit=vio.MAX_ARRAY_BYTES)))
+    except ValueError as exc:
+        raise _corrupt(path, str(exc).split(":")[0][:80]) from None
+    needed = ("spec_sha256", "config", "scale", "start_record", "starts")
+    if not isinstance(saved, dict) or any(k not in saved for k in needed) \
+            or not isinstance(saved["starts"], list):
+        raise _corrupt(path, "missing entries")
+    return saved
+
+
 def run_design(spec: Spec, out_dir: str | Path, config: DesignConfig, *, resume: bool = False,
                progress: bool = True,
                on_iteration: Callable[[StartState], None] | None = None) -> DesignResult:
@@ -678,14 +696,17 @@ def run_design(spec: Spec, out_dir: str | Path, config: DesignConfig, *, resume:
     if resume:
         if not ck_path.exists():
             raise UsageError(f"{out}: no {CHECKPOINT} to resume from")
-        saved = json.loads(ck_path.read_text())
+        saved = _read_checkpoint(ck_path)
         if saved["spec_sha256"] != spec.sha256:
             raise UsageError(f"{out}: the checkpoint belongs to a different spec "
                              "(its sha256 differs); resume with the same spec file")
         if saved["config"] != json.loads(vio.dumps(config.identity())):
             raise UsageError(f"{out}: the [optimize] settings differ from the checkpointed "
                              "run (only --iterations may change on resume)")
-        scale = float.fromhex(saved["scale"])
+        try:
+            scale = float.fromhex(saved["scale"])
+        except (TypeError, ValueError):
+            raise _corrupt(ck_path, "scale") from None
     else:
         scale = None
     u0 = np.asarray(opt.to_unit(problem.x_start, problem.box))
@@ -702,7 +723,10 @@ def run_design(spec: Spec, out_dir: str | Path, config: DesignConfig, *, resume:
     problem = dataclasses.replace(problem, scale=scale)
 
     if saved is not None:
-        starts = [_state_from_json(d, problem) for d in saved["starts"]]
+        try:
+            starts = [_state_from_json(d, problem) for d in saved["starts"]]
+        except (KeyError, TypeError, ValueError, IndexError, AttributeError):
+            raise _corrupt(ck_path, "starts") from None
         start_record = saved["start_record"]
     else:
         us = opt.random_starts(u0, config.starts, config.seed, problem.valid)
@@ -892,6 +916,11 @@ def freeform_summary(result: DesignResult) -> dict:
             "pattern_violations": [v.message for v in pattern_violations(p, pattern)]}
 
 
+OUTPUT_FILES = ("design.toml", "density.npy", "evaluation.json", "refined.json", "design.png",
+                "history.json", "convergence.png", "comparison.json", "comparison.txt",
+                "report.html", CHECKPOINT)
+
+
 def write_outputs(result: DesignResult, out_dir: str | Path, *, status=None) -> dict:
     """design.toml, evaluation.json, refined.json, design.png, history.json,
     convergence.png, comparison.json/.txt, report.html; returns the comparison dict."""
@@ -903,12 +932,15 @@ def write_outputs(result: DesignResult, out_dir: str | Path, *, status=None) -> 
     p = result.problem
     spec = p.spec
     # stored as a cleanroom can make it, and evaluated as stored (design.toml is reloaded)
+    from designer.spec import with_absolute_files
     from designer.units import cleanroom_round
 
+    # files the spec names stay found wherever design.toml is evaluated from
+    density = str((out / "density.npy").resolve())
     params = get_family(spec.family).replace(
-        p.design_params(result.best_u),
+        p.design_params(result.best_u, density),
         cleanroom_round(p.values_of(result.best_u), p.config.bounds))
-    raw = design_raw(spec, params)
+    raw = with_absolute_files(design_raw(spec, params), spec.base_dir, keep_in=out)
     if p.chain is not None:
         # the pattern lives on the design grid: pin the step so evaluate uses that grid
         vio.write_atomic(out / "density.npy", _npy_bytes(p.binarized(result.best_u)))
@@ -918,13 +950,14 @@ def write_outputs(result: DesignResult, out_dir: str | Path, *, status=None) -> 
     design_spec = load_spec(out / "design.toml")
     say("evaluating the optimized design")
     ev = evaluate(design_spec)
-    design_eval = evaluation_json(ev)
+    design_eval = vio.require_finite(evaluation_json(ev), str(out / "design.toml"))
     vio.write_json(out / "evaluation.json", design_eval)
     vio.save_figure(evaluation_figure(ev), out / "design.png")
     if ev.solver == "fdfd":
         fine = ev.run.grid_step_m / p.config.refine_factor
         say(f"re-evaluating at {fine * 1e9:.3g} nm")
-        refined = evaluation_json(evaluate(design_spec, grid_step_m=fine, refine=True))
+        refined = vio.require_finite(evaluation_json(evaluate(design_spec, grid_step_m=fine,
+                                                            refine=True)))
         refined["note"] = (f"step {fine:.4g} m = evaluation step / {p.config.refine_factor:g}; "
                            "relative_error_estimate from a second solve at 1.5x that step")
     else:
@@ -932,7 +965,7 @@ def write_outputs(result: DesignResult, out_dir: str | Path, *, status=None) -> 
         refined["note"] = "exact layer-stack solution: no finer grid exists (error 0)"
     vio.write_json(out / "refined.json", refined)
     say("evaluating the start design")
-    start_eval = evaluation_json(evaluate(spec, refine=False))
+    start_eval = vio.require_finite(evaluation_json(evaluate(spec, refine=False)))
     data, text = comparison(result, start_eval, design_eval)
     data["refined"] = {"grid_step_m": refined["provenance"].get("grid_step_m"),
                        "beta_c_per_field_m_per_V":
@@ -1007,8 +1040,11 @@ def design_command(args) -> int:
     """``velomatch design SPEC --out DIR [--resume] [--overwrite] [--iterations N]``."""
     spec = load_spec(args.spec)
     config = parse_optimize(spec, getattr(args, "iterations", None))
+    from designer.spec import input_files
+
     out = vio.prepare_output_dir(args.out, overwrite=getattr(args, "overwrite", False),
-                                 resume=getattr(args, "resume", False))
+                                 resume=getattr(args, "resume", False),
+                                 inputs=input_files(spec), names=OUTPUT_FILES)
 
     def status(message):
         print(f"  {message}", file=sys.stderr, flush=True)

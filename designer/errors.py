@@ -10,6 +10,19 @@ from __future__ import annotations
 _MISSING = object()
 
 
+def short_repr(value, limit: int = 120) -> str:
+    """``repr`` of a value cut to about ``limit`` characters (a huge list in a spec is
+    named by its start, not printed whole)."""
+    import reprlib
+
+    r = reprlib.Repr()
+    r.maxlist = r.maxtuple = r.maxdict = r.maxset = 6
+    r.maxstring = r.maxother = 60
+    r.maxlevel = 3
+    text = r.repr(value)
+    return text if len(text) <= limit else text[:limit - 3] + "..."
+
+
 class VelomatchError(Exception):
     """Base of every error the CLI reports as a message (exit code 2)."""
 
@@ -35,9 +48,13 @@ class SpecError(VelomatchError):
         if self.key:
             where += f": {self.key}"
             if self.value is not _MISSING:
-                where += f" = {self.value!r}"
+                where += f" = {short_repr(self.value)}"
         return f"{where}: {self.message}"
 
 
 class UsageError(VelomatchError):
     """Bad command-line use that argparse cannot catch (e.g. an existing output dir)."""
+
+
+class NumericalError(VelomatchError):
+    """A solve that produced NaN or infinity: the command fails instead of reporting it."""

@@ -393,7 +393,8 @@ def evaluate(spec: Spec, *, grid_step_m: float | None = None, refine: bool | Non
             say(f"FDFD solve, requested step {1.5 * h * 1e9:.3g} nm (error estimate)")
             coarse = run_fdfd(spec, 1.5 * h, force=True, with_map=False)
             ratio = coarse.grid_step_m / run.grid_step_m
-            if abs(run.integral_V) > 0:
+            # both steps can round to the same (minimum) grid: then there is no estimate
+            if abs(run.integral_V) > 0 and ratio > 1.0 + 1e-9:
                 rel_error = (abs(run.integral_V - coarse.integral_V) / (ratio - 1.0)
                              / abs(run.integral_V))
         solver = "fdfd"
@@ -518,5 +519,7 @@ def _design_rules(spec: Spec, ev: Evaluation) -> dict:
 
 def evaluate_raw(raw: dict, *, source: str = "<spec>", base_dir=None, **options) -> dict:
     """Parse a raw spec tree and return the ``evaluate`` JSON object (for sweeps)."""
+    from designer.io import require_finite
+
     spec = parse_spec(raw, source=source, base_dir=base_dir)
-    return evaluation_json(evaluate(spec, **options))
+    return require_finite(evaluation_json(evaluate(spec, **options)), source)

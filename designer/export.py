@@ -56,7 +56,6 @@ from __future__ import annotations
 import datetime as _dt
 import os
 import sys
-import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -573,15 +572,8 @@ def make_library(drawing: Drawing, s: LayoutSettings, items: dict, fmt: str):
 
 def _atomic(path: Path, write) -> None:
     """Call ``write(tmp_path)`` on a temporary file beside ``path``, then rename."""
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.stem}.", suffix=path.suffix, dir=path.parent)
-    os.close(fd)
-    try:
+    with vio.atomic_path(path) as tmp:
         write(tmp)
-        os.replace(tmp, path)
-    finally:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
 
 
 def write_layout(path: str | os.PathLike, drawing: Drawing, s: LayoutSettings, items: dict,
@@ -674,19 +666,14 @@ def _format_of(out: Path, given: str | None) -> str:
     return fmt
 
 
-def _check_outputs(out: Path, preview: Path | None, overwrite: bool) -> None:
+def _check_outputs(out: Path, preview: Path | None, overwrite: bool, inputs=()) -> None:
+    """Both outputs are checked before anything is written (an export never leaves a
+    layout without its preview because the preview's path was bad)."""
+    vio.check_output(out, flag="--out", overwrite=overwrite, inputs=inputs)
     if preview is not None:
-        if preview.suffix.lower() not in (".svg", ".png"):
-            raise UsageError(f"--preview {preview}: must end in .svg or .png")
-        if preview.resolve() == out.resolve():
-            raise UsageError("--preview and --out name the same file")
-    for path, flag in ((out, "--out"), (preview, "--preview")):
-        if path is None:
-            continue
-        if path.is_dir():
-            raise UsageError(f"{flag} {path}: is a folder")
-        if path.exists() and not overwrite:
-            raise UsageError(f"{flag} {path}: file exists; pass --overwrite to replace it")
+        vio.check_output(preview, flag="--preview", overwrite=overwrite, inputs=inputs,
+                         suffixes=(".svg", ".png"))
+    vio.check_distinct([("--out", out), ("--preview", preview)])
 
 
 def _text_report(summ: dict, findings) -> str:
@@ -727,7 +714,9 @@ def export_command(args) -> int:
     _check_outputs(out, preview, overwrite)
     spec = load_spec(args.spec)
     from designer.fabrication import check_design
+    from designer.spec import input_files
 
+    _check_outputs(out, preview, overwrite, input_files(spec))
     material = spec.sample.material.name
     materials = tuple(dict.fromkeys(
         [material] + ([spec.sample.freeform.material.name]
@@ -758,9 +747,13 @@ def export_command(args) -> int:
                               "(pass --ignore-rules to write anyway)")
     view = top_view(spec, settings)
     drawing = build_drawing(view, settings, material)
-    write_layout(out, drawing, settings, items, fmt)
-    if preview is not None:
-        write_preview(preview, drawing, view, settings)
+    if preview is None:
+        write_layout(out, drawing, settings, items, fmt)
+    else:
+        # the preview is renamed into place only once the layout is written
+        with vio.atomic_path(preview) as tmp_preview:
+            write_preview(tmp_preview, drawing, view, settings)
+            write_layout(out, drawing, settings, items, fmt)
     summ = summary(drawing, view, settings, findings, file=str(out), fmt=fmt, written=True,
                    ignored=bool(findings), preview=str(preview) if preview else None,
                    items=items)

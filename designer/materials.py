@@ -417,9 +417,17 @@ def read_nk_table(path, *, interpolation: str = "pchip") -> Tabulated:
     Lines starting with ``#`` and blank lines are ignored; one non-numeric header line
     is allowed.  A missing k column means k = 0.
     """
+    from designer.io import MAX_TABLE_BYTES, decode_text, read_input
+
     path = Path(path)
     rows = []
-    for lineno, raw in enumerate(path.read_text().splitlines(), start=1):
+    try:
+        text = decode_text(read_input(path, limit=MAX_TABLE_BYTES))
+    except ValueError as exc:
+        raise ValueError(f"material table {path}: {exc}") from None
+    # messages name the line and what is wrong, never the line's content (the file may
+    # be anything the user pointed at)
+    for lineno, raw in enumerate(text.splitlines(), start=1):
         line = raw.split("#", 1)[0].strip()
         if not line:
             continue
@@ -428,10 +436,16 @@ def read_nk_table(path, *, interpolation: str = "pchip") -> Tabulated:
             values = [float(f) for f in fields]
         except ValueError:
             if rows:
-                raise ValueError(f"{path}:{lineno}: cannot read numbers from {raw!r}") from None
+                raise ValueError(f"{path}:{lineno}: not a row of numbers (expected "
+                                 "'wavelength_nm, n[, k]')") from None
             continue  # header line
         if len(values) not in (2, 3):
-            raise ValueError(f"{path}:{lineno}: expected 'wavelength_nm, n[, k]', got {raw!r}")
+            raise ValueError(f"{path}:{lineno}: expected 'wavelength_nm, n[, k]', got "
+                             f"{len(values)} numbers")
+        if not all(math.isfinite(v) for v in values) or values[0] <= 0 or values[1] <= 0 \
+                or (len(values) == 3 and values[2] < 0):
+            raise ValueError(f"{path}:{lineno}: needs a positive wavelength and n, k >= 0, "
+                             "all finite")
         rows.append(values + [0.0] * (3 - len(values)))
     if len(rows) < 2:
         raise ValueError(f"{path}: a table needs at least two rows of wavelength_nm, n, k")
@@ -458,6 +472,14 @@ def _parse_complex(value) -> complex:
 
 
 _USER_KEYS = {"n", "k", "eps", "file", "name", "interpolation"}
+MAX_INDEX = 1000.0      # |n|, k; far infrared metals reach a few hundred
+MIN_ABS_EPS = 1e-6      # eps = 0 (or nearly) makes the FDFD operator singular
+
+
+def _real(value, name: str) -> float:
+    if isinstance(value, bool) or not isinstance(value, (int, float)):
+        raise ValueError(f"{name} must be a number, got {type(value).__name__}")
+    return float(value)
 
 
 def resolve_material(value, *, base_dir=None) -> Material:
@@ -490,9 +512,11 @@ def resolve_material(value, *, base_dir=None) -> Material:
     name = str(value.get("name", ""))
 
     if "n" in value:
-        n, k = float(value["n"]), float(value.get("k", 0.0))
-        if not (math.isfinite(n) and n > 0):
-            raise ValueError(f"refractive index n must be positive, got {n}")
+        n, k = _real(value["n"], "n"), _real(value.get("k", 0.0), "k")
+        if not (math.isfinite(n) and 0 < n <= MAX_INDEX):
+            raise ValueError(f"refractive index n must be in (0, {MAX_INDEX:g}], got {n}")
+        if k > MAX_INDEX:
+            raise ValueError(f"extinction coefficient k must be <= {MAX_INDEX:g}, got {k}")
         if not (math.isfinite(k) and k >= 0):
             raise ValueError(f"extinction coefficient k must be >= 0 (k > 0 is loss), got {k}")
         kind = "metal" if k > n else "dielectric"
@@ -504,13 +528,18 @@ def resolve_material(value, *, base_dir=None) -> Material:
             raise ValueError(f"permittivity must be finite, got {eps}")
         if eps.imag < 0:
             raise ValueError(f"Im eps must be >= 0 (loss, exp(-i omega t) convention), got {eps}")
+        if abs(eps) < MIN_ABS_EPS or abs(eps) > MAX_INDEX**2:
+            raise ValueError(f"|eps| must be within [{MIN_ABS_EPS:g}, {MAX_INDEX**2:g}] (the "
+                             f"field solvers divide by eps), got {eps}")
         kind = "metal" if eps.real < 0 else "dielectric"
         return Material(name or f"eps={eps:g}", ConstantPermittivity(eps), "user value",
                         kind=kind)
-    path = Path(value["file"])
+    if not isinstance(value["file"], str) or not value["file"].strip():
+        raise ValueError("'file' must be a file name")
+    path = Path(value["file"]).expanduser()
     if not path.is_absolute():
         path = Path(base_dir if base_dir is not None else ".") / path
-    if not path.is_file():
+    if not path.exists():
         raise FileNotFoundError(f"material table not found: {path}")
     table = read_nk_table(path, interpolation=value.get("interpolation", "pchip"))
     kind = "metal" if np.any(np.asarray(table.k) > np.asarray(table.n)) else "dielectric"

@@ -21,12 +21,17 @@ from typing import Any
 from designer import beam as beam_physics
 from designer import laser as laser_physics
 from designer.errors import SpecError
-from designer.io import canonical_sha256
+from designer.io import MAX_SPEC_BYTES, canonical_sha256, decode_text, read_input
 from designer.tables import TableReader
 
 TABLES = ("beam", "laser", "sample", "path", "solver", "fabrication", "spectrum",
           "optimize", "layout")
 MAX_VOLTAGE_KV = 10_000.0  # 10 MV: beyond this the electron-microscope scenarios end
+MIN_VOLTAGE_KV = 1e-3      # 1 V: below, beta underflows the phase factors (|I| ~ e^{-iws/v})
+# extreme ultraviolet to far infrared: outside this no material model applies and the
+# grid either vanishes (cells of atomic size) or spans metres
+MIN_WAVELENGTH_NM = 10.0
+MAX_WAVELENGTH_NM = 1e7
 
 
 @dataclass(frozen=True)
@@ -119,16 +124,55 @@ def load_spec(path: str | Path) -> Spec:
     path = Path(path)
     source = str(path)
     try:
-        text = path.read_text()
-    except FileNotFoundError:
-        raise SpecError(source, None, "file not found") from None
-    except OSError as exc:
-        raise SpecError(source, None, f"cannot read file ({exc.strerror})") from None
+        text = decode_text(read_input(path, limit=MAX_SPEC_BYTES))
+    except ValueError as exc:
+        raise SpecError(source, None, str(exc)) from None
+    return parse_spec(parse_toml(text, source), source=source, base_dir=path.resolve().parent)
+
+
+MAX_NESTING = 20   # tables and arrays; a spec needs 4
+
+
+def parse_toml(text: str, source: str) -> dict:
+    """TOML text -> table tree, every failure one SpecError (nesting bounded first, so
+    a deeply nested document cannot exhaust the parser's recursion)."""
+    _check_nesting(text, source)
     try:
-        raw = tomllib.loads(text)
+        return tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise SpecError(source, None, f"malformed TOML: {exc}") from None
-    return parse_spec(raw, source=source, base_dir=path.resolve().parent)
+    except (RecursionError, MemoryError):
+        raise SpecError(source, None, "malformed TOML: nested too deeply") from None
+
+
+def _check_nesting(text: str, source: str) -> None:
+    if text.count("[") + text.count("{") <= MAX_NESTING:
+        return
+    depth = deepest = 0
+    quote = None
+    comment = escaped = False
+    for ch in text:
+        if comment:
+            comment = ch != "\n"
+        elif quote:
+            if escaped:
+                escaped = False
+            elif ch == "\\" and quote == '"':
+                escaped = True
+            elif ch == quote:
+                quote = None
+        elif ch in "\"'":
+            quote = ch
+        elif ch == "#":
+            comment = True
+        elif ch in "[{":
+            depth += 1
+            deepest = max(deepest, depth)
+        elif ch in "]}":
+            depth = max(0, depth - 1)
+    if deepest > MAX_NESTING:
+        raise SpecError(source, None, f"malformed TOML: brackets nested {deepest} deep "
+                        f"(at most {MAX_NESTING})")
 
 
 def parse_spec(raw: dict, *, source: str = "<spec>", base_dir: Path | None = None) -> Spec:
@@ -175,7 +219,7 @@ def _table(top: TableReader, name: str) -> dict:
 
 
 def _parse_beam(r: TableReader) -> BeamSpec:
-    kv = r.number("voltage_kV", minimum=0.0, exclusive_minimum=True, maximum=MAX_VOLTAGE_KV)
+    kv = r.number("voltage_kV", minimum=MIN_VOLTAGE_KV, maximum=MAX_VOLTAGE_KV)
     r.finish()
     e = beam_physics.electron(kv * 1e3)
     return BeamSpec(voltage_V=kv * 1e3, beta=e.beta, gamma=e.gamma,
@@ -191,7 +235,8 @@ AMPLITUDE_KEYS = {
 
 
 def _parse_laser(r: TableReader, family: str) -> LaserSpec:
-    wavelength = r.length("wavelength_nm", minimum=0.0, exclusive_minimum=True)
+    wavelength = r.length("wavelength_nm", minimum=MIN_WAVELENGTH_NM,
+                          maximum=MAX_WAVELENGTH_NM)
     default_angle = "phase-matched" if family == "prism" else 0.0
     angle = r.number_or_word("angle_deg", ["phase-matched"], default_angle,
                              minimum=-90.0, maximum=90.0, exclusive_minimum=True,
@@ -240,7 +285,7 @@ def _parse_solver(r: TableReader) -> SolverSpec:
 
 
 def _parse_spectrum(r: TableReader) -> SpectrumSpec:
-    zlp = r.number("zlp_fwhm_eV", 0.6, minimum=0.0, exclusive_minimum=True)
+    zlp = r.number("zlp_fwhm_eV", 0.6, minimum=1e-4, maximum=100.0)
     pulse = r.number("electron_pulse_fs", None, minimum=0.0, exclusive_minimum=True)
     delay = r.number("delay_fs", 0.0)
     r.finish()
@@ -292,3 +337,64 @@ def dump_spec(raw: dict) -> str:
 
     ordered = {t: raw[t] for t in TABLES if t in raw}
     return tomli_w.dumps(ordered)
+
+
+# -- files named by a spec -----------------------------------------------------------
+
+FILE_KEYS = ("file", "density_file")   # material tables ({file = ...}), stored densities
+
+
+def file_refs(raw: Any, prefix: str = "") -> list[tuple[str, str]]:
+    """``(dotted key, path as written)`` of every file a raw spec tree names."""
+    out = []
+    if isinstance(raw, dict):
+        for key, value in raw.items():
+            dotted = f"{prefix}.{key}" if prefix else str(key)
+            if key in FILE_KEYS and isinstance(value, str):
+                out.append((dotted, value))
+            else:
+                out.extend(file_refs(value, dotted))
+    elif isinstance(raw, list):
+        for i, value in enumerate(raw):
+            out.extend(file_refs(value, f"{prefix}.{i}"))
+    return out
+
+
+def resolve_file(name: str, base_dir: Path | None) -> Path:
+    """A file named in a spec: relative names are taken from the spec's own folder."""
+    path = Path(name).expanduser()
+    if not path.is_absolute() and base_dir is not None:
+        path = Path(base_dir) / path
+    return path
+
+
+def input_files(spec: Spec) -> list[Path]:
+    """The spec file and every file it names (outputs must never replace one of them)."""
+    files = [Path(spec.source)] if spec.base_dir is not None else []
+    files += [resolve_file(v, spec.base_dir) for _, v in file_refs(spec.raw)]
+    return files
+
+
+def with_absolute_files(raw: dict, base_dir: Path | None, *, keep_in: Path | None = None) -> dict:
+    """A copy of ``raw`` whose file names are absolute (resolved against ``base_dir``),
+    so the tree can be written as a spec anywhere and still find its files.  Files
+    inside ``keep_in`` (the folder the spec is written to) are named relative to it."""
+    out = copy.deepcopy(raw)
+
+    def fix(node):
+        if isinstance(node, dict):
+            for key, value in node.items():
+                if key in FILE_KEYS and isinstance(value, str):
+                    path = resolve_file(value, base_dir).resolve()
+                    if keep_in is not None and path.parent == Path(keep_in).resolve():
+                        node[key] = path.name
+                    else:
+                        node[key] = str(path)
+                else:
+                    fix(value)
+        elif isinstance(node, list):
+            for value in node:
+                fix(value)
+
+    fix(out)
+    return out

@@ -386,18 +386,69 @@ def _run_pool(jobs, evaluator, n_workers: int, done) -> None:
 
     # spawn, not fork: the parent may already run JAX's threads
     ctx = mp.get_context("spawn")
-    init = _one_thread_each if n_workers > 1 else None
-    with ProcessPoolExecutor(max_workers=n_workers, mp_context=ctx, initializer=init) as pool:
-        futures = {pool.submit(evaluate_job, evaluator, job): i for i, job in enumerate(jobs)}
+    pool = ProcessPoolExecutor(max_workers=n_workers, mp_context=ctx, initializer=_worker_init,
+                               initargs=(os.getpid(), n_workers > 1))
+    futures = {pool.submit(evaluate_job, evaluator, job): i for i, job in enumerate(jobs)}
+    pending = set(futures)
+    try:
+        while pending:
+            finished, pending = wait(pending, return_when=FIRST_COMPLETED)
+            for fut in finished:
+                done(futures[fut], fut.result())
+    except BaseException:
+        # interrupted (Ctrl-C) or failed: keep what has finished, stop the rest now
+        # instead of waiting for the points in flight
+        for fut in list(pending):
+            if fut.done() and not fut.cancelled() and fut.exception() is None:
+                done(futures[fut], fut.result())
+        _stop_pool(pool)
+        raise
+    pool.shutdown(wait=True)
+
+
+def _stop_pool(pool) -> None:
+    processes = list(getattr(pool, "_processes", {}).values())
+    pool.shutdown(wait=False, cancel_futures=True)
+    for proc in processes:
         try:
-            pending = set(futures)
-            while pending:
-                finished, pending = wait(pending, return_when=FIRST_COMPLETED)
-                for fut in finished:
-                    done(futures[fut], fut.result())
-        except BaseException:
-            pool.shutdown(wait=True, cancel_futures=True)
-            raise
+            proc.terminate()
+        except (OSError, AttributeError):
+            pass
+    for proc in processes:
+        try:
+            proc.join(timeout=2.0)
+        except (OSError, AssertionError):
+            pass
+
+
+def _worker_init(parent_pid: int, one_thread: bool) -> None:
+    """Pool initializer: die with the parent (a sweep killed with SIGKILL must not leave
+    its workers behind), leave Ctrl-C to the parent, and optionally one thread each."""
+    import signal
+    import threading
+
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    try:  # Linux: the kernel sends SIGKILL when the parent dies
+        import ctypes
+
+        libc = ctypes.CDLL(None, use_errno=True)
+        libc.prctl(1, signal.SIGKILL, 0, 0, 0)   # PR_SET_PDEATHSIG
+    except (OSError, AttributeError):
+        pass
+    if os.getppid() != parent_pid:
+        os._exit(1)
+
+    def watch():   # elsewhere (and as a second line): poll the parent's pid
+        import time
+
+        while True:
+            time.sleep(1.0)
+            if os.getppid() != parent_pid:
+                os._exit(1)
+
+    threading.Thread(target=watch, daemon=True, name="velomatch-parent-watch").start()
+    if one_thread:
+        _one_thread_each()
 
 
 def _one_thread_each() -> None:
@@ -453,9 +504,8 @@ class SweepResult:
 
 def _prepare_sweep_dir(out_dir: Path, plan: SweepPlan) -> bool:
     """Create or re-open a sweep folder; True when resuming."""
-    if out_dir.exists() and not out_dir.is_dir():
-        raise UsageError(f"{out_dir}: exists and is not a folder")
-    if out_dir.exists() and any(out_dir.iterdir()):
+    vio.open_output_dir(out_dir)   # checked, created and locked for the whole run
+    if vio.folder_entries(out_dir):
         plan_path = out_dir / PLAN_FILE
         try:
             stored = _load_json(plan_path)
@@ -469,7 +519,6 @@ def _prepare_sweep_dir(out_dir: Path, plan: SweepPlan) -> bool:
             raise UsageError(f"{out_dir}: holds a different sweep ({what}); it is not "
                              "overwritten — choose another --out or remove the folder")
         return True
-    out_dir.mkdir(parents=True, exist_ok=True)
     return False
 
 
@@ -505,7 +554,7 @@ def run_sweep(plan: SweepPlan, out_dir: str | os.PathLike, *,
     points_dir.mkdir(exist_ok=True)
     if not resuming:
         vio.write_json(out_dir / PLAN_FILE, {"sweep_sha256": plan.sha256, **plan.identity()})
-        _write_base_spec(out_dir / SPEC_FILE, plan.base_raw)
+        _write_base_spec(out_dir / SPEC_FILE, plan.base_raw, plan.base_dir)
 
     values = plan.point_values()
     raws = [point_raw(plan.base_raw, v) for v in values]
@@ -549,10 +598,10 @@ def run_sweep(plan: SweepPlan, out_dir: str | os.PathLike, *,
                        failed=failed, out_dir=out_dir, files=files)
 
 
-def _write_base_spec(path: Path, raw: dict) -> None:
-    from designer.spec import dump_spec
+def _write_base_spec(path: Path, raw: dict, base_dir=None) -> None:
+    from designer.spec import dump_spec, with_absolute_files
 
-    vio.write_atomic(path, dump_spec(raw))
+    vio.write_atomic(path, dump_spec(with_absolute_files(raw, base_dir)))
 
 
 def sweep_json(plan: SweepPlan, values: list[dict], shas: list[str],

@@ -346,9 +346,16 @@ def _order_field(coef, a, b, kz, z, z_p, lat, xp):
     """Ez of the Floquet orders ``coef (a e^{i kz (z-z_p)} + b e^{-i kz (z-z_p)})``
     summed with the lateral factors ``lat`` (n_x, n_orders); returns (n_x, len(z))."""
     dz = z[None, :] - z_p
-    per = coef[:, None] * (a[:, None] * xp.exp(1j * kz[:, None] * dz)
-                           + b[:, None] * xp.exp(-1j * kz[:, None] * dz))
+    per = coef[:, None] * (_wave(a[:, None], 1j * kz[:, None] * dz, xp)
+                           + _wave(b[:, None], -1j * kz[:, None] * dz, xp))
     return lat @ per
+
+
+def _wave(amplitude, exponent, xp):
+    """``amplitude * exp(exponent)``, with the exponent dropped where the amplitude is
+    zero: an evanescent order switched off on the side where it would grow must give
+    0, not 0 * inf = NaN (fine grids have orders with |Im kz| dz ~ 1e3)."""
+    return amplitude * xp.exp(xp.where(amplitude != 0, exponent, 0.0))
 
 
 def _coupling_z(ez, hy, *, nx, dx, dz, x0, z0, x, z1, z2, eps_below, eps_above, omega,
@@ -455,8 +462,8 @@ def _coupling_z(ez, hy, *, nx, dx, dz, x0, z0, x, z1, z2, eps_below, eps_above, 
         # int over z >= z_from (sign=+1) or z <= z_from (sign=-1) of
         # (a e^{i kz (z - z_p)} + b e^{-i kz (z - z_p)}) e^{-i kappa z}
         up, dn = _tail(kz, kappa, z_from, sign, xp)
-        return (a * xp.exp(1j * kz * (z_from - z_p)) * up
-                + b * xp.exp(-1j * kz * (z_from - z_p)) * dn)
+        return (_wave(a, 1j * kz * (z_from - z_p), xp) * up
+                + _wave(b, -1j * kz * (z_from - z_p), xp) * dn)
 
     prop_a = half_line(kza, xp.where(pa, aa, zero), xp.where(pa, ba, zero), z_s, z2, +1)
     prop_b = half_line(kzb, xp.where(pb, ab, zero), xp.where(pb, bb, zero), z_s, z1, -1)

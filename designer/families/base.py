@@ -142,6 +142,9 @@ class MaterialRef:
 
 
 # ------------------------------------------------------------------------ materials
+RANGE_SLACK = 1.25   # within 25 % beyond a material's data: extrapolate with a warning
+
+
 def resolve(reader: TableReader, key: str, value, ctx: SampleContext) -> MaterialRef:
     """Resolve a material value (catalogue name or dict) at the laser wavelength.
 
@@ -154,6 +157,12 @@ def resolve(reader: TableReader, key: str, value, ctx: SampleContext) -> Materia
     if materials is not None:
         try:
             mat = materials.resolve_material(value, base_dir=ctx.base_dir)
+            lo, hi = mat.valid_range_m
+            if not lo / RANGE_SLACK <= ctx.wavelength_m <= hi * RANGE_SLACK:
+                raise ValueError(f"the laser wavelength {ctx.wavelength_m * 1e9:.6g} nm is far "
+                                 f"outside the data of '{mat.name}' ({lo * 1e9:.6g}-"
+                                 f"{hi * 1e9:.6g} nm); give the material as {{n = ...}} or a "
+                                 "table that covers it")
             eps = complex(mat.eps(ctx.wavelength_m))
         except (ValueError, TypeError, FileNotFoundError, KeyError) as exc:
             raise reader.error(key, str(exc), value) from None

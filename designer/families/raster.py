@@ -308,6 +308,9 @@ def fill_fractions(scene: Scene, grid: Grid, period: float, where: str = "cell",
     "numpy" (no compilation; for masks and checks) or "jax" (the code path of
     :func:`rasterize`, jit-compiled).
     """
+    from designer.cost import check_grid
+
+    check_grid(grid)  # refuse a grid too large for memory before allocating on it
     if backend == "jax":
         key, arrays = _pack(scene)
         return _fill_core(key, arrays, grid, float(period), where)
@@ -330,6 +333,9 @@ def rasterize(scene: Scene, grid: Grid, period: float):
     Formula and source: module docstring (Farjadpour et al., Opt. Lett. 31, 2972, 2006).
     Compiled once per scene structure and grid (jax.jit); traceable in the geometry.
     """
+    from designer.cost import check_grid
+
+    check_grid(grid)
     key, arrays = _pack(scene)
     eps = jnp.asarray(scene.eps, dtype=complex)
     return _rasterize_core(key, arrays, eps, grid, float(period))

@@ -250,13 +250,26 @@ def parse_freeform(sample: TableReader, ctx: SampleContext, material: MaterialRe
 
 
 def _load_density(r: TableReader, name: str, base_dir) -> np.ndarray:
-    path = pathlib.Path(name)
+    import io
+
+    from designer import io as vio
+
+    path = pathlib.Path(name).expanduser()
     if not path.is_absolute() and base_dir is not None:
         path = pathlib.Path(base_dir) / path
     try:
-        a = np.load(path, allow_pickle=False)
-    except (OSError, ValueError) as exc:
-        raise r.error("density_file", f"cannot read a .npy array ({exc})", name) from None
+        data = vio.read_input(path, limit=vio.MAX_ARRAY_BYTES)
+    except ValueError as exc:
+        raise r.error("density_file", f"{path}: {exc}", name) from None
+    if not data.startswith(b"\x93NUMPY"):
+        kind = "a text file" if _looks_like_text(data) else "not a NumPy array file"
+        raise r.error("density_file", f"{path}: is {kind}; a density must be a .npy file "
+                      "(numpy.save of a 2D array)", name)
+    try:
+        a = np.load(io.BytesIO(data), allow_pickle=False)
+    except (OSError, ValueError, EOFError):
+        raise r.error("density_file", f"{path}: damaged .npy file, or one holding Python "
+                      "objects instead of numbers", name) from None
     if a.ndim != 2 or a.size == 0 or not np.issubdtype(a.dtype, np.number) \
             or np.iscomplexobj(a):
         raise r.error("density_file", f"must hold a 2D real array (nx, nz); got shape "
@@ -265,6 +278,14 @@ def _load_density(r: TableReader, name: str, base_dir) -> np.ndarray:
     if not np.all(np.isfinite(a)) or a.min() < 0.0 or a.max() > 1.0:
         raise r.error("density_file", "densities must be finite and within [0, 1]", name)
     return a
+
+
+def _looks_like_text(data: bytes) -> bool:
+    try:
+        data[:4096].decode("utf-8")
+    except UnicodeDecodeError:
+        return False
+    return b"\x00" not in data[:4096]
 
 
 def to_table(fr: FreeformRegion) -> dict:
