@@ -77,7 +77,7 @@ class Evaluation:
     e_max_rule: str
     fourier_orders: int | None = None     # fmm runs: the order count reported
     order_study: Any = None               # fmm runs: designer.holes.OrderStudy
-    spot_integral_V: complex | None = None  # fmm runs: mean over the electron spot
+    spot_integral_V: tuple | None = None  # fmm runs: (mean |I|, rms |I|) over the spot
 
 
 def angular_frequency(wavelength_m: float) -> float:
@@ -464,9 +464,10 @@ def coupling_figures(ev: Evaluation) -> dict:
         out["map"] = {"x_m": run.map_x_m, "beta_c": betas}
         spot = ev.spec.path.electron_spot_m
         if spot and ev.spot_integral_V is not None:
-            mean = abs(complex(beta_from_integral(ev.spot_integral_V * e0, ev.omega)))
-            out["spot_average"] = {"fwhm_m": spot, "mean_beta_c": mean,
-                                   "averaged": "coupling integral over the 2D Gaussian spot"}
+            to_beta = abs(complex(beta_from_integral(e0, ev.omega)))
+            mean, rms = ev.spot_integral_V
+            out["spot_average"] = {"fwhm_m": spot, "mean_beta_c": mean * to_beta,
+                                   "rms_beta_c": rms * to_beta}
         elif spot:
             from solvers.coupling import spot_average
 

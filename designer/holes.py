@@ -14,7 +14,7 @@ Conventions (SI inside)
     plane of incidence) and π/2 for s.  The path direction is
     ŝ = (sin τ cos χ, sin τ sin χ, cos τ) with the sample tilt τ (``[path] tilt_deg``)
     and its azimuth χ (``tilt_azimuth_deg``); the path crosses the film's mid-plane at
-    ``(x_nm, y_nm)``.
+    ``(x_nm, y_nm)``, and the phase of I refers to that crossing.
 
 Fourier orders
     Harmonics |m|, |n| <= N ((2N + 1)^2 of them).  With ``[solver] fourier_orders = N``
@@ -93,11 +93,8 @@ def fmm_geometry(params, values: dict | None = None):
     elif params.pattern == "slits":
         P = params.period_m
         lattice = fmm.Lattice(a1=(P, 0.0), a2=(0.0, P))
-        if not hasattr(fmm, "Rectangle"):
-            raise NotImplementedError("the Fourier modal solver has no rectangle shape for "
-                                      "slits")
-        shapes = tuple(fmm.Rectangle(center=(v[f"slit_centers_nm.{j}"] * 1e-9, 0.0),
-                                     size=(v[f"slit_widths_nm.{j}"] * 1e-9, 2.0 * P))
+        shapes = tuple(fmm.Slit(center=v[f"slit_centers_nm.{j}"] * 1e-9,
+                                width=v[f"slit_widths_nm.{j}"] * 1e-9)
                        for j in range(len(params.slit_widths_m)))
         film = lambda th: fmm.PatternedLayer(  # noqa: E731
             thickness=th, eps_background=params.material.eps, shapes=shapes,
@@ -117,17 +114,30 @@ def path_direction(spec) -> tuple[float, float, float]:
     return (math.sin(tau) * math.cos(chi), math.sin(tau) * math.sin(chi), math.cos(tau))
 
 
-def path_point(spec, x_m=None, y_m=None, thickness_m=None):
-    """(x, y) where the path crosses z = 0 (the stack's bottom), given its crossing
-    ``(x_m, y_m)`` of the film's mid-plane (default: the spec's ``[path]``)."""
+def path_point(spec, x_m=None, y_m=None):
+    """(x, y) where the path crosses the film's mid-plane (default: the spec's
+    ``[path] x_nm, y_nm``; 0 when not given)."""
+    x = (spec.path.x_m or 0.0) if x_m is None else x_m
+    y = (spec.path.y_m or 0.0) if y_m is None else y_m
+    return (x, y)
+
+
+def film_mid_z(spec, thickness_m=None):
+    """z of the film's mid-plane in the solver's frame (lowest layer from z = 0)."""
     from designer.families import membrane
 
-    x = spec.path.x_m or 0.0 if x_m is None else x_m
-    y = spec.path.y_m or 0.0 if y_m is None else y_m
-    sx, sy, sz = path_direction(spec)
     t = spec.sample.thickness_m if thickness_m is None else thickness_m
-    z_mid = membrane.film_bottom_m(spec.sample) + 0.5 * t
-    return (x - sx / sz * z_mid, y - sy / sz * z_mid)
+    return membrane.film_bottom_m(spec.sample) + 0.5 * t
+
+
+def solver_orders(spec, n: int):
+    """The ``orders`` argument for N: (N, N) for 2D lattices, (N, 0) for slits (1D), 0
+    for unpatterned stacks (their harmonics do not couple: one is exact)."""
+    if spec.sample.holes is not None:
+        return int(n)
+    if spec.sample.pattern == "slits":
+        return (int(n), 0)
+    return 0
 
 
 # ------------------------------------------------------------------ one solve
@@ -141,8 +151,8 @@ def solve(spec, orders: int, values: dict | None = None, *, wavelength_m=None,
     phi = spec.laser.azimuth_rad if azimuth_rad is None else azimuth_rad
     return fmm.solve(lattice, layers=layers, eps_below=eps_below, eps_above=eps_above,
                      wavelength=lam, theta=theta, phi=phi,
-                     polarization=spec.laser.polarization_rad, orders=int(orders),
-                     incidence=spec.laser.from_side)
+                     polarization=spec.laser.polarization_rad,
+                     orders=solver_orders(spec, orders), incidence=spec.laser.from_side)
 
 
 def coupling(spec, orders: int, values: dict | None = None, *, point=None, **kw):
@@ -152,11 +162,11 @@ def coupling(spec, orders: int, values: dict | None = None, *, point=None, **kw)
     """
     fmm = _fmm()
     sol = solve(spec, orders, values, **kw)
-    if point is None:
-        t = None if not values or "thickness_nm" not in values else values["thickness_nm"] * 1e-9
-        point = path_point(spec, thickness_m=t)
-    return fmm.coupling_integral(sol, point=point, direction=path_direction(spec),
-                                 velocity=spec.beam.velocity_m_per_s)
+    t = None if not values or "thickness_nm" not in values else values["thickness_nm"] * 1e-9
+    return fmm.coupling_integral(sol, point=path_point(spec) if point is None else point,
+                                 direction=path_direction(spec),
+                                 velocity=spec.beam.velocity_m_per_s,
+                                 z_ref=film_mid_z(spec, t))
 
 
 # ------------------------------------------------------------------ evaluate
@@ -176,20 +186,27 @@ def order_study(spec, orders: int | None = None, *, refine: bool = True,
     chosen order)."""
     fmm = _fmm()
     point, direction = path_point(spec), path_direction(spec)
-    v = spec.beam.velocity_m_per_s
+    v, z_ref = spec.beam.velocity_m_per_s, film_mid_z(spec)
     done: list[tuple[int, complex, object]] = []
 
     def at(n):
-        say(f"Fourier modal solve, orders |m|,|n| <= {n} ({(2 * n + 1) ** 2} harmonics)")
+        o = solver_orders(spec, n)
+        count = (2 * n + 1) ** 2 if o == n else (2 * n + 1 if o else 1)
+        say(f"Fourier modal solve, orders up to {n} ({count} harmonics)")
         sol = solve(spec, n)
         i = complex(np.asarray(fmm.coupling_integral(sol, point=point, direction=direction,
-                                                     velocity=v)))
+                                                     velocity=v, z_ref=z_ref)))
         done.append((n, i, sol))
         return i
 
     def change(a, b):
         return abs(a - b) / abs(b) if abs(b) > 0 else (0.0 if a == b else math.inf)
 
+    if solver_orders(spec, 1) == 0:
+        # an unpatterned stack: one harmonic is exact (the estimate is 0)
+        at(0)
+        study = OrderStudy((0,), (done[0][1],), 0, 0.0)
+        return study, done[0][2]
     if orders is not None:
         i0 = at(orders)
         err = None
@@ -234,9 +251,10 @@ def run_fmm(spec, *, refine: bool | None = None, with_map: bool = True,
         y = spec.path.y_m or 0.0
         map_x = (np.arange(MAP_POINTS) + 0.5) / MAP_POINTS * P - 0.5 * P
         direction, v = path_direction(spec), spec.beam.velocity_m_per_s
+        z_ref = film_mid_z(spec)
         map_i = np.array([complex(np.asarray(fmm.coupling_integral(
             sol, point=path_point(spec, x_m=float(x), y_m=y), direction=direction,
-            velocity=v))) for x in map_x])
+            velocity=v, z_ref=z_ref))) for x in map_x])
     e_max = None
     if hasattr(fmm, "max_field_in_layer"):
         from designer.families import membrane
@@ -249,12 +267,16 @@ def run_fmm(spec, *, refine: bool | None = None, with_map: bool = True,
     return run, study, sol
 
 
-def spot_average(spec, sol) -> complex | None:
-    """Coupling averaged over the Gaussian electron spot (``[path] electron_spot_nm``)."""
+def spot_average(spec, sol):
+    """(mean |I|, rms |I|) over the Gaussian electron spot (``[path] electron_spot_nm``),
+    in V, or None.  Electrons at different positions are incoherent: the spectrum is
+    the current-weighted mean of single-electron spectra (solvers.fmm.coupling)."""
     fwhm = spec.path.electron_spot_m
     if not fwhm:
         return None
     fmm = _fmm()
-    return complex(np.asarray(fmm.spot_averaged_coupling(
-        sol, point=path_point(spec), direction=path_direction(spec),
-        velocity=spec.beam.velocity_m_per_s, fwhm=fwhm)))
+    spot = fmm.spot_averaged_coupling(sol, point=path_point(spec),
+                                      direction=path_direction(spec),
+                                      velocity=spec.beam.velocity_m_per_s, fwhm=fwhm,
+                                      z_ref=film_mid_z(spec))
+    return float(np.asarray(spot.mean_abs)), float(np.asarray(spot.rms_abs))
