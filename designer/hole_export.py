@@ -71,24 +71,31 @@ def placements(holes, field_m) -> list[tuple[tuple[float, float], int, int, tupl
     return out
 
 
-def hole_findings(spec, settings) -> list:
-    """Design-rule findings of a hole membrane (module docstring)."""
-    from designer.export import Finding
-    from designer.fabrication import check_materials, design_rule_check
-    from designer.families import membrane
+def write_field_findings(spec) -> list:
+    """The hole field (``[layout] field_um``) against the write field."""
+    from designer.export import Finding, parse_layout
 
+    settings = parse_layout(spec.layout, spec.source, materials=(spec.sample.material.name,))
     rules = spec.fabrication
-    out = [Finding("cross-section", v.rule, v.measured_m, v.limit_m, v.location, v.description)
-           for v in design_rule_check(membrane.features(spec.sample), rules)]
-    names = [spec.sample.material.name] + [m.name for m, _ in spec.sample.layers_below
-                                           + spec.sample.layers_above]
-    out += [Finding("cross-section", v.rule, v.measured_m, v.limit_m, v.location,
-                    v.description) for v in check_materials(names, rules)]
     fx, fy = settings.field_m
     if max(fx, fy) > rules.write_field_m * (1 + 1e-9):
-        out.append(Finding("layout", "write_field", max(fx, fy), rules.write_field_m,
-                           (0.0, 0.0), f"hole field {fx * 1e6:.4g} x {fy * 1e6:.4g} um "
-                           "(larger than one write field: stitching)"))
+        return [Finding("layout", "write_field", max(fx, fy), rules.write_field_m,
+                        (0.0, 0.0), f"hole field {fx * 1e6:.4g} x {fy * 1e6:.4g} um "
+                        "(larger than one write field: stitching)")]
+    return []
+
+
+def hole_findings(spec, settings) -> list:
+    """Design-rule findings of a hole membrane (module docstring): the verdict every
+    command reports (designer.fabrication.check_design), plus the extra layers'
+    materials."""
+    from designer.export import Finding
+    from designer.fabrication import check_design, check_materials
+
+    out = list(check_design(spec).findings)
+    names = [m.name for m, _ in spec.sample.layers_below + spec.sample.layers_above]
+    out += [Finding("cross-section", v.rule, v.measured_m, v.limit_m, v.location,
+                    v.description) for v in check_materials(names, spec.fabrication)]
     return out
 
 

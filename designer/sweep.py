@@ -574,9 +574,14 @@ def sweep_json(plan: SweepPlan, values: list[dict], shas: list[str],
         if rec.get("error") or not rec:
             entry["error"] = rec.get("error", "not evaluated")
         points.append(entry)
+    from designer.cautions import cautions
+
+    fields = [r["result"]["laser"]["peak_field_V_per_m"] for r in records.values()
+              if (r.get("result") or {}).get("laser", {}).get("peak_field_V_per_m")]
     return {"axes": {a.key: list(a.values) for a in plan.axes},
             "shape": list(plan.shape),
             "points": points,
+            "cautions": cautions(max(fields, default=None)),
             "base_spec_sha256": plan.identity()["base_spec_sha256"],
             "provenance": provenance(plan.identity()["base_spec_sha256"],
                                      sweep_sha256=plan.sha256)}
@@ -762,4 +767,6 @@ def sweep_command(args, *, evaluator: Callable = _default_evaluator) -> int:
              if result.failed else ""))
     for what, path in result.files.items():
         print(f"  {what}: {path}")
+    for line in result.data.get("cautions", []):
+        print(line)
     return 1 if result.failed else 0

@@ -131,6 +131,7 @@ def _float_list(reader: TableReader, name: str, default):
 def parse(reader: TableReader, ctx: SampleContext) -> MembraneParams:
     """Read the ``[sample]`` table of a membrane."""
     reader.raw("family", NAME)
+    freeform_region.parse_plane(reader, NAME, allowed=("cross_section",))
     material = base.resolve(reader, "material", reader.raw("material"), ctx)
     thickness = reader.length("thickness_nm", 100e-9, minimum=0.0,
                               exclusive_minimum=True)

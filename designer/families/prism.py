@@ -25,6 +25,7 @@ from dataclasses import dataclass
 from designer import drawing
 from designer.errors import SpecError
 from designer.families import base
+from designer.families import region as freeform_region
 from designer.families.base import (
     Feature,
     LayerStack,
@@ -62,6 +63,7 @@ class PrismParams:
 def parse(reader: TableReader, ctx: SampleContext) -> PrismParams:
     """Read the ``[sample]`` table of a prism; refuses n beta <= 1 when phase matching."""
     reader.raw("family", NAME)
+    freeform_region.parse_plane(reader, NAME, allowed=("cross_section",))
     material = base.resolve(reader, "material", reader.raw("material"), ctx)
     raw_layers = reader.raw("layers", [])
     if not isinstance(raw_layers, list):
