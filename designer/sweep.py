@@ -538,10 +538,19 @@ def run_sweep(plan: SweepPlan, out_dir: str | os.PathLike, *,
 
     data = sweep_json(plan, values, shas, records)
     files = {"json": out_dir / RESULT_FILE, "spec": out_dir / SPEC_FILE}
+    from designer.resonances import sweep_resonances
+    from designer.slab_modes import sweep_bands
+
+    data["resonances"] = sweep_resonances(data)
+    bands = sweep_bands(plan.base_raw, values, plan.shape, source=plan.source,
+                        base_dir=plan.base_dir)
+    if bands is not None:   # hole membranes: folded guided modes of the film
+        data["bands"] = {"label": "empty-lattice guided modes (homogenized film)",
+                         "mismatch": {k: g.tolist() for k, g in bands.items()}}
     if plot:
         guides = guide_orders(plan, values)
         data["guides"] = _guides_json(plan, guides)
-        files["plot"] = plot_sweep(data, out_dir / PLOT_FILE, guides=guides)
+        files["plot"] = plot_sweep(data, out_dir / PLOT_FILE, guides=guides, bands=bands)
     vio.write_json(files["json"], data)
     failed = sum(1 for p in data["points"] if p.get("error"))
     return SweepResult(plan=plan, data=data, computed=len(todo), cached=n_cached,
@@ -702,7 +711,8 @@ def quantity_grid(data: dict, name: str) -> np.ndarray:
     return np.asarray(vals, dtype=float).reshape(shape)
 
 
-def plot_sweep(data: dict, path: str | os.PathLike, *, guides: GuideOrders | None = None):
+def plot_sweep(data: dict, path: str | os.PathLike, *, guides: GuideOrders | None = None,
+               bands: dict | None = None):
     """Line plots (1 axis) or heat maps (2 axes) of the plotted quantities; saved atomically."""
     from matplotlib.figure import Figure
 
@@ -745,6 +755,10 @@ def plot_sweep(data: dict, path: str | os.PathLike, *, guides: GuideOrders | Non
             ax.set_xlabel(keys[0])
             ax.set_ylabel(keys[1])
             ax.set_title(label, fontsize=9)
+        if bands:
+            from designer.slab_modes import draw_bands
+
+            draw_bands(ax, bands, data["axes"])
     return vio.save_figure(fig, path)
 
 
