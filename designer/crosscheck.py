@@ -520,13 +520,23 @@ def crosscheck_command(args) -> int:
     resolution = getattr(args, "grid_step_nm", None)
     if resolution is not None and not (math.isfinite(resolution) and resolution > 0):
         raise CrosscheckError(f"--grid-step-nm = {resolution!r}: must be > 0")
+    from designer.evaluate import choose_method
+
+    if choose_method(spec) == "fmm":  # 2D-periodic or out of plane: Meep in 3D
+        from designer.crosscheck3d import crosscheck3d_command
+
+        if not quiet:
+            print(f"cross-checking {args.spec} (Fourier modal method against Meep 3D)",
+                  file=sys.stderr)
+        return crosscheck3d_command(args, spec, status)
     max_wall = float(getattr(args, "max_wall_s", 900.0))
     if not (math.isfinite(max_wall) and max_wall > 0):
         raise CrosscheckError(f"--max-wall-s = {max_wall!r}: must be > 0")
     if not quiet:
         print(f"cross-checking {args.spec} (FDFD against Meep FDTD)", file=sys.stderr)
     result = crosscheck(spec, grid_step_m=None if resolution is None else resolution * 1e-9,
-                        tolerance=float(getattr(args, "tolerance", DEFAULT_TOLERANCE)),
+                        tolerance=(DEFAULT_TOLERANCE if getattr(args, "tolerance", None) is None
+                                   else float(args.tolerance)),
                         max_wall_s=max_wall, progress=status)
     data = crosscheck_json(result, spec)
     if result.agree:   # a pass (exit 0) is never reported on NaN or infinite figures

@@ -81,6 +81,9 @@ class Evaluation:
     interaction_length_m: float | None
     gradient_length_m: float | None
     e_max_rule: str
+    fourier_orders: int | None = None     # fmm runs: the order count reported
+    order_study: Any = None               # fmm runs: designer.holes.OrderStudy
+    spot_integral_V: tuple | None = None  # fmm runs: (mean |I|, rms |I|) over the spot
 
 
 def angular_frequency(wavelength_m: float) -> float:
@@ -88,7 +91,12 @@ def angular_frequency(wavelength_m: float) -> float:
 
 
 def choose_method(spec: Spec) -> str:
-    """``"layers"`` or ``"fdfd"`` for this spec (see the module docstring)."""
+    """``"layers"``, ``"fdfd"`` or ``"fmm"`` for this spec (see the module docstring)."""
+    from designer import holes
+
+    if spec.solver.method == "fmm" or holes.is_fmm_sample(spec) or (
+            spec.solver.method == "auto" and holes.out_of_plane(spec)):
+        return "fmm"
     family = get_family(spec.family)
     layered = family.layer_stack(spec.sample, spec.context) is not None
     if spec.solver.method == "layers":
@@ -379,7 +387,16 @@ def evaluate(spec: Spec, *, grid_step_m: float | None = None, refine: bool | Non
     angle = family.laser_angle(spec.sample, spec.context)
     omega = angular_frequency(spec.laser.wavelength_m)
     refine = spec.solver.refine if refine is None else refine
-    if method == "layers":
+    fmm_extra = {}
+    if method == "fmm":
+        from designer import holes
+
+        run, study, sol = holes.run_fmm(spec, refine=refine, progress=say)
+        rel_error = study.relative_error
+        solver = "fmm"
+        fmm_extra = dict(fourier_orders=study.chosen, order_study=study,
+                         spot_integral_V=holes.spot_average(spec, sol))
+    elif method == "layers":
         say("solving the layer stack (exact)")
         run = run_layers(spec)
         rel_error = 0.0
@@ -415,8 +432,10 @@ def evaluate(spec: Spec, *, grid_step_m: float | None = None, refine: bool | Non
                       omega=omega, run=run, relative_error=rel_error,
                       interaction_length_m=interaction, gradient_length_m=gradient_length,
                       e_max_rule=("planar stack: no corners" if solver == "layers" else
-                                  f"{CORNER_RULE} "
-                                  f"({spec.fabrication.corner_radius_m * 1e9:g} nm)"))
+                                  "not computed by the Fourier modal method" if solver == "fmm"
+                                  else f"{CORNER_RULE} "
+                                  f"({spec.fabrication.corner_radius_m * 1e9:g} nm)"),
+                      **fmm_extra)
 
 
 def coupling_figures(ev: Evaluation) -> dict:
@@ -449,6 +468,12 @@ def coupling_figures(ev: Evaluation) -> dict:
         "max_field_rule": ev.e_max_rule,
         "classical_max_energy_gain_eV": abs(integral),
     }
+    if ev.solver == "fmm":
+        out["fourier_orders"] = ev.fourier_orders
+        st = ev.order_study
+        out["order_convergence"] = {"orders": list(st.orders),
+                                    "beta_c": [abs(complex(beta_from_integral(i * e0, ev.omega)))
+                                               for i in st.integrals_V]}
     run = ev.run
     if run.map_z_m is not None:
         betas = np.abs(np.asarray(beta_from_integral(run.map_z_integral_V * e0, ev.omega)))
@@ -465,7 +490,12 @@ def coupling_figures(ev: Evaluation) -> dict:
         betas = np.abs(np.asarray(beta_from_integral(run.map_integral_V * e0, ev.omega)))
         out["map"] = {"x_m": run.map_x_m, "beta_c": betas}
         spot = ev.spec.path.electron_spot_m
-        if spot:
+        if spot and ev.spot_integral_V is not None:
+            to_beta = abs(complex(beta_from_integral(e0, ev.omega)))
+            mean, rms = ev.spot_integral_V
+            out["spot_average"] = {"fwhm_m": spot, "mean_beta_c": mean * to_beta,
+                                   "rms_beta_c": rms * to_beta}
+        elif spot:
             from solvers.coupling import spot_average
 
             mean_abs, mean_sq = spot_average(run.map_x_m, betas, ev.run.layout.path.x_m, spot,
@@ -482,7 +512,7 @@ def evaluation_json(ev: Evaluation) -> dict:
     from designer.resolved import explanations, resolved_sample
 
     spec = ev.spec
-    return {
+    out = {
         "electron": {"voltage_V": spec.beam.voltage_V, "beta": spec.beam.beta,
                      "gamma": spec.beam.gamma,
                      "velocity_m_per_s": spec.beam.velocity_m_per_s},
@@ -499,6 +529,11 @@ def evaluation_json(ev: Evaluation) -> dict:
         "provenance": provenance(spec.sha256, solver=ev.solver,
                                  grid_step_m=ev.run.grid_step_m),
     }
+    if ev.solver == "fmm":
+        out["laser"]["azimuth_deg"] = math.degrees(spec.laser.azimuth_rad)
+        out["laser"]["polarization_deg"] = math.degrees(spec.laser.polarization_rad)
+        out["provenance"]["fourier_orders"] = ev.fourier_orders
+    return out
 
 
 def _plane_facts(spec: Spec) -> dict:

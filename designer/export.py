@@ -713,6 +713,10 @@ def export_command(args) -> int:
     ignore = bool(getattr(args, "ignore_rules", False))
     _check_outputs(out, preview, overwrite)
     spec = load_spec(args.spec)
+    if getattr(spec.sample, "holes", None) is not None:  # lattice of holes: array references
+        from designer.hole_export import export_holes
+
+        return export_holes(args, spec, out, preview, fmt)
     from designer.fabrication import check_design
     from designer.spec import input_files
 

@@ -853,7 +853,13 @@ def check_design(spec, params=None, *, grid_step_m: float | None = None,
         found = freeform_findings(spec, p, grid_step_m)
         blocking = any(f.rule in ("etch", "region") for f in found)
         out += found
-    if layout:
+    if layout and getattr(p, "holes", None) is not None:
+        # hole lattices are drawn as array references: their sizes are the features
+        # above; the layout adds the write field (designer.hole_export)
+        from designer.hole_export import write_field_findings
+
+        out += write_field_findings(spec)
+    elif layout:
         if blocking:
             skipped.append("layout: the free-form pattern cannot be drawn as it is")
         else:

@@ -381,7 +381,7 @@ def _is_height(key: str) -> bool:
 
 
 def sweep_figure(data: dict, plotted, quantity_grid, *, guides=None, guide_positions=None,
-                 decay_length_m: float | None = None) -> Figure:
+                 decay_length_m: float | None = None, bands: dict | None = None) -> Figure:
     """The sweep picture: one panel per figure of merit.
 
     One swept key: a line plot; guide lines (laser colour) only where the swept key
@@ -442,4 +442,8 @@ def sweep_figure(data: dict, plotted, quantity_grid, *, guides=None, guide_posit
             ax.set_xlabel(axis_label(keys[0]))
             ax.set_ylabel(axis_label(keys[1]))
             ax.set_title(label, fontsize=9)
+        if bands:
+            from designer.slab_modes import draw_bands
+
+            draw_bands(ax, bands, data["axes"])
     return fig

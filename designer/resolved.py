@@ -109,6 +109,10 @@ def resolved_sample(ev) -> dict:
         electron["x_m"] = path.x_m
         electron["x_from"] = "spec ([path] x_nm)" if _given(ctx, "x_nm") else "default: 0"
         electron["crosses_m"] = [bottom, top]
+        if getattr(params, "holes", None) is not None or spec.path.tilt_rad:
+            electron["y_m"] = spec.path.y_m or 0.0
+            electron["tilt_deg"] = math.degrees(spec.path.tilt_rad)
+            electron["tilt_azimuth_deg"] = math.degrees(spec.path.tilt_azimuth_rad)
     out["electron"] = electron
     out["decay_length_m"] = decay_length(ctx)
     out["decay_length_rule"] = "1/e length of the synchronous field, beta*gamma*lambda/(2*pi)"

@@ -61,6 +61,8 @@ class LaserSpec:
     amplitude_value: float       # V/m, W/m², J/m² or J
     duration_s: float | None
     spot_radius_m: float | None
+    azimuth_rad: float = 0.0         # plane of incidence from x, toward y
+    polarization_rad: float = 0.0    # 0: p (E in the plane of incidence), pi/2: s
 
     def peak_field_in(self, n: float = 1.0) -> float:
         """Peak field (V/m) of the incident wave in the incidence medium of index ``n``."""
@@ -83,14 +85,18 @@ class PathSpec:
     offset_m: float | None
     length_m: float | None
     electron_spot_m: float | None   # FWHM of the electron spot across the path
+    y_m: float | None = None        # hole membranes: lateral y from a hole centre
+    tilt_rad: float = 0.0           # sample tilt: path direction from the film normal
+    tilt_azimuth_rad: float = 0.0   # azimuth of that tilt, from x toward y
 
 
 @dataclass(frozen=True)
 class SolverSpec:
     grid_step_m: float | None      # None: chosen from wavelength and index
-    method: str                     # "auto" | "fdfd" | "layers"
+    method: str                     # "auto" | "fdfd" | "layers" | "fmm"
     refine: bool                    # Richardson error estimate from a second resolution
     force: bool                     # accept coarse grids (below 8 cells per wavelength)
+    fourier_orders: int | None = None   # fmm: harmonics |m|, |n| <= N; None = automatic
 
 
 @dataclass(frozen=True)
@@ -205,10 +211,40 @@ def parse_spec(raw: dict, *, source: str = "<spec>", base_dir: Path | None = Non
     family = get_family(family_name)
     sample = family.parse(sample_reader, context)
     family.check_path(sample, context)
+    _check_out_of_plane(raw, source, family_name, sample)
     return Spec(source=source, base_dir=base_dir, raw=raw, beam=beam, laser=laser,
                 family=family_name, sample=sample, path=path, solver=solver,
                 fabrication=fabrication, spectrum=spectrum, optimize=optimize,
                 layout=layout, context=context, sha256=canonical_sha256(raw))
+
+
+# keys that describe a problem out of the x-z plane: only the Fourier modal method
+# (membranes) solves those; their defaults mean "in plane"
+_OUT_OF_PLANE = (("laser", "azimuth_deg", 0.0), ("laser", "polarization", "p"),
+                 ("path", "y_nm", None), ("path", "tilt_deg", 0.0),
+                 ("path", "tilt_azimuth_deg", None), ("solver", "fourier_orders", None))
+
+
+def _check_out_of_plane(raw: dict, source: str, family: str, sample) -> None:
+    """Out-of-plane keys need a membrane; hole membranes need the Fourier modal method."""
+    holes = getattr(sample, "holes", None) is not None
+    method = get_value(raw, "solver.method", "auto")
+    if holes and method in ("fdfd", "layers"):
+        raise SpecError(source, "solver.method", 'a hole lattice is periodic in x and y: '
+                        'use "fmm" or "auto"', method)
+    for table, key, default in _OUT_OF_PLANE:
+        value = get_value(raw, f"{table}.{key}", default)
+        if value == default or (key == "polarization" and value == 0):
+            continue
+        if family != "membrane":
+            raise SpecError(source, f"{table}.{key}", "only membranes are solved out of "
+                            "the x-z plane (Fourier modal method)", value)
+        if method in ("fdfd", "layers"):
+            raise SpecError(source, f"{table}.{key}", 'needs solver.method = "fmm" or '
+                            f'"auto" (the {method} solver works in the x-z plane)', value)
+        if getattr(sample, "pattern", None) == "slits" and method != "fmm":
+            raise SpecError(source, f"{table}.{key}", 'for a slit membrane this needs '
+                            'solver.method = "fmm"', value)
 
 
 def _table(top: TableReader, name: str) -> dict:
@@ -260,10 +296,14 @@ def _parse_laser(r: TableReader, family: str) -> LaserSpec:
     if form == "pulse_energy" and spot_m is None:
         raise r.error("spot_radius_um", f"needed with {key} (1/e² intensity radius)",
                       with_value=False)
+    azimuth = r.number("azimuth_deg", 0.0, minimum=-360.0, maximum=360.0)
+    pol = r.number_or_word("polarization", ["p", "s"], "p", minimum=-180.0, maximum=180.0)
+    pol_rad = {"p": 0.0, "s": math.pi / 2}.get(pol) if isinstance(pol, str) else math.radians(pol)
     r.finish()
     return LaserSpec(wavelength_m=wavelength, angle_rad=angle_rad, from_side=from_side,
                      amplitude_form=form, amplitude_value=value, duration_s=duration_s,
-                     spot_radius_m=spot_m)
+                     spot_radius_m=spot_m, azimuth_rad=math.radians(azimuth),
+                     polarization_rad=pol_rad)
 
 
 def _parse_path(r: TableReader) -> PathSpec:
@@ -271,17 +311,24 @@ def _parse_path(r: TableReader) -> PathSpec:
     offset = r.length("offset_nm", None)
     length = r.length("length_um", None, minimum=0.0, exclusive_minimum=True)
     spot = r.length("electron_spot_nm", None, minimum=0.0)
+    y = r.length("y_nm", None)
+    tilt = r.number("tilt_deg", 0.0, minimum=-80.0, maximum=80.0)
+    tilt_az = r.number("tilt_azimuth_deg", 0.0, minimum=-360.0, maximum=360.0)
     r.finish()
-    return PathSpec(x_m=x, offset_m=offset, length_m=length, electron_spot_m=spot)
+    return PathSpec(x_m=x, offset_m=offset, length_m=length, electron_spot_m=spot, y_m=y,
+                    tilt_rad=math.radians(tilt), tilt_azimuth_rad=math.radians(tilt_az))
 
 
 def _parse_solver(r: TableReader) -> SolverSpec:
     resolution = r.length("grid_step_nm", None, minimum=0.0, exclusive_minimum=True)
-    method = r.string("method", "auto", choices=("auto", "fdfd", "layers"))
+    method = r.string("method", "auto", choices=("auto", "fdfd", "layers", "fmm"))
     refine = r.boolean("refine", True)
     force = r.boolean("force", False)
+    orders = r.number_or_word("fourier_orders", ["auto"], "auto", minimum=0, maximum=40,
+                              integer=True)
     r.finish()
-    return SolverSpec(grid_step_m=resolution, method=method, refine=refine, force=force)
+    return SolverSpec(grid_step_m=resolution, method=method, refine=refine, force=force,
+                      fourier_orders=None if orders == "auto" else int(orders))
 
 
 def _parse_spectrum(r: TableReader) -> SpectrumSpec:

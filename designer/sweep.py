@@ -587,11 +587,20 @@ def run_sweep(plan: SweepPlan, out_dir: str | os.PathLike, *,
 
     data = sweep_json(plan, values, shas, records)
     files = {"json": out_dir / RESULT_FILE, "spec": out_dir / SPEC_FILE}
+    from designer.resonances import sweep_resonances
+    from designer.slab_modes import sweep_bands
+
+    data["resonances"] = sweep_resonances(data)
+    bands = sweep_bands(plan.base_raw, values, plan.shape, source=plan.source,
+                        base_dir=plan.base_dir)
+    if bands is not None:   # hole membranes: folded guided modes of the film
+        data["bands"] = {"label": "empty-lattice guided modes (homogenized film)",
+                         "mismatch": {k: g.tolist() for k, g in bands.items()}}
     if plot:
         guides = guide_orders(plan, values)
         data["guides"] = _guides_json(plan, guides)
         files["plot"] = plot_sweep(data, out_dir / PLOT_FILE, guides=guides,
-                                   decay_length_m=_decay_length(plan))
+                                   decay_length_m=_decay_length(plan), bands=bands)
     vio.write_json(files["json"], data)
     failed = sum(1 for p in data["points"] if p.get("error"))
     return SweepResult(plan=plan, data=data, computed=len(todo), cached=n_cached,
@@ -755,14 +764,14 @@ def quantity_grid(data: dict, name: str) -> np.ndarray:
 
 
 def plot_sweep(data: dict, path: str | os.PathLike, *, guides: GuideOrders | None = None,
-               decay_length_m: float | None = None):
+               decay_length_m: float | None = None, bands: dict | None = None):
     """Line plots (1 axis) or heat maps (2 axes) of the plotted quantities
     (:func:`designer.plots.sweep_figure`); saved atomically."""
     from designer.plots import sweep_figure
 
     return vio.save_figure(sweep_figure(data, PLOTTED, quantity_grid, guides=guides,
                                         guide_positions=guide_positions,
-                                        decay_length_m=decay_length_m), path)
+                                        decay_length_m=decay_length_m, bands=bands), path)
 
 
 def _decay_length(plan: SweepPlan) -> float | None:

@@ -1,10 +1,22 @@
-"""A thin film the electron crosses (along +z), plain or with a periodic slit pattern.
+"""A thin film the electron crosses (along +z), plain, with slits or with a lattice of holes.
 
 Geometry: the film fills ``0 <= z <= thickness`` (vacuum on both sides).  With
 ``pattern = "slits"`` it is cut by slits through its whole thickness, repeated with
 ``period_nm`` along x: slit j has width ``slit_widths_nm[j]`` and is centred at
 ``slit_centers_nm[j]`` (0 <= centre < period; slits must not overlap).  The material
 between slits are the *bars*.  The electron moves along +z at ``path.x_nm``.
+
+With ``pattern = "holes"`` the film is a photonic-crystal slab: holes through the
+whole thickness on a ``lattice = "square"`` (a1 = (P, 0), a2 = (0, P)) or
+``"hexagonal"`` (a1 = (P, 0), a2 = (P/2, P sqrt(3)/2)) lattice of ``period_nm`` P,
+circular (``hole_radius_nm``) or elliptical (``hole_axes_nm = [a, b]`` semi-axes,
+``hole_angle_deg`` from x to the a axis).  A hole centre is the origin of x and y, so
+``[path] x_nm = y_nm = 0`` is the middle of a hole.  Unpatterned films and hole
+membranes may sit on further unpatterned layers, ``layers = [{material, thickness_nm,
+side = "below" | "above"}, ...]`` (each side listed from the film outward), and on a
+``substrate`` half-space below.  Hole membranes are solved by the Fourier modal method
+(designer.holes); the x-z cross-section through a row of hole centres (y = 0) is what
+the pictures and the Yee-grid layout show.
 
 An unpatterned film is laid out as a short Bloch cell (the field is a plane wave
 along x) and is also offered as an exact layer stack (solvers.layers).  There is no
@@ -61,6 +73,46 @@ class MembraneParams:
     slit_centers_m: tuple[float, ...] = ()
     wavelength_m: float = 0.0
     freeform: freeform_region.FreeformRegion | None = None   # [sample.freeform]
+    holes: "HoleLattice | None" = None    # pattern = "holes"
+    layers_below: tuple = ()              # ((MaterialRef, thickness_m), ...) film outward
+    layers_above: tuple = ()
+    substrate: MaterialRef | None = None  # half-space below everything
+
+
+@dataclass(frozen=True)
+class HoleLattice:
+    """Holes through the film on a 2D lattice (SI).
+
+    ``semi_axes_m = (a, b)``: a along the direction ``angle_rad`` from x, b across it;
+    a circle has a == b and ``circular`` True (given as ``hole_radius_nm``).
+    """
+
+    lattice: str                      # "square" | "hexagonal"
+    period_m: float
+    semi_axes_m: tuple[float, float]
+    angle_rad: float = 0.0
+    circular: bool = True
+
+    @property
+    def a1(self) -> tuple[float, float]:
+        return (self.period_m, 0.0)
+
+    @property
+    def a2(self) -> tuple[float, float]:
+        if self.lattice == "square":
+            return (0.0, self.period_m)
+        return (0.5 * self.period_m, 0.5 * math.sqrt(3.0) * self.period_m)
+
+    @property
+    def cell_area_m2(self) -> float:
+        (ax, ay), (bx, by) = self.a1, self.a2
+        return abs(ax * by - ay * bx)
+
+    @property
+    def fill_fraction(self) -> float:
+        """Share of the cell area that is hole (open)."""
+        a, b = self.semi_axes_m
+        return math.pi * a * b / self.cell_area_m2
 
 
 def _float_list(reader: TableReader, name: str, default):
@@ -82,17 +134,38 @@ def parse(reader: TableReader, ctx: SampleContext) -> MembraneParams:
     material = base.resolve(reader, "material", reader.raw("material"), ctx)
     thickness = reader.length("thickness_nm", 100e-9, minimum=0.0,
                               exclusive_minimum=True)
-    pattern = reader.string("pattern", "none", choices=("none", "slits"))
-    if pattern == "none":
-        for key in ("period_nm", "slit_widths_nm", "slit_centers_nm"):
+    pattern = reader.string("pattern", "none", choices=("none", "slits", "holes"))
+    for key in _HOLE_KEYS:
+        if pattern != "holes" and reader.has(key):
+            raise reader.error(key, 'only with pattern = "holes"', reader.raw(key))
+    if pattern != "slits":
+        for key in ("slit_widths_nm", "slit_centers_nm"):
             if reader.has(key):
                 raise reader.error(key, 'only with pattern = "slits"', reader.raw(key))
-        if reader.has("freeform"):
-            raise reader.error("freeform", 'a free-form region needs pattern = "slits" '
-                               "(its period is the unit cell; the slits are the start "
-                               "pattern unless a density is given)", reader.raw("freeform"))
+    if pattern == "slits":
+        for key in ("layers", "substrate"):
+            if reader.has(key):
+                raise reader.error(key, 'extra layers and a substrate are offered for '
+                                   'pattern = "none" and "holes" only', reader.raw(key))
+    if pattern != "slits" and reader.has("freeform"):
+        raise reader.error("freeform", 'a free-form region needs pattern = "slits" '
+                           "(its period is the unit cell; the slits are the start "
+                           "pattern unless a density is given)", reader.raw("freeform"))
+    if pattern == "none":
+        if reader.has("period_nm"):
+            raise reader.error("period_nm", 'only with pattern = "slits" or "holes"',
+                               reader.raw("period_nm"))
+        below, above, substrate = _read_layers(reader, ctx)
         reader.finish()
-        return MembraneParams(material, thickness, "none", None, wavelength_m=ctx.wavelength_m)
+        return MembraneParams(material, thickness, "none", None, wavelength_m=ctx.wavelength_m,
+                              layers_below=below, layers_above=above, substrate=substrate)
+    if pattern == "holes":
+        holes = _read_holes(reader, ctx)
+        below, above, substrate = _read_layers(reader, ctx)
+        reader.finish()
+        return MembraneParams(material, thickness, "holes", holes.period_m,
+                              wavelength_m=ctx.wavelength_m, holes=holes,
+                              layers_below=below, layers_above=above, substrate=substrate)
     # defaults: one slit of half the period, period = wavelength (a start, no source)
     period = reader.length("period_nm", round(ctx.wavelength_m * 1e9) * 1e-9, minimum=0.0,
                            exclusive_minimum=True)
@@ -113,6 +186,104 @@ def parse(reader: TableReader, ctx: SampleContext) -> MembraneParams:
                                             z_default=(0.0, thickness))
     reader.finish()
     return dataclasses.replace(p, freeform=region) if region is not None else p
+
+
+_HOLE_KEYS = ("lattice", "hole_radius_nm", "hole_axes_nm", "hole_angle_deg")
+
+
+def _read_holes(reader: TableReader, ctx: SampleContext) -> HoleLattice:
+    lattice = reader.string("lattice", "square", choices=("square", "hexagonal"))
+    period = reader.length("period_nm", round(ctx.wavelength_m * 0.6e9) * 1e-9, minimum=0.0,
+                           exclusive_minimum=True)
+    if reader.has("hole_radius_nm") and reader.has("hole_axes_nm"):
+        raise reader.error("hole_axes_nm", "give either hole_radius_nm (circles) or "
+                           "hole_axes_nm (ellipses), not both", reader.raw("hole_axes_nm"))
+    if reader.has("hole_axes_nm"):
+        axes = _float_list(reader, "hole_axes_nm", None)
+        if len(axes) != 2 or not all(a > 0 for a in axes):
+            raise reader.error("hole_axes_nm", "must be two positive semi-axes [a, b] in nm",
+                               reader.raw("hole_axes_nm"))
+        angle = reader.number("hole_angle_deg", 0.0, minimum=-180.0, maximum=180.0)
+        holes = HoleLattice(lattice, period, (axes[0] * 1e-9, axes[1] * 1e-9),
+                            math.radians(angle), circular=False)
+        key = "hole_axes_nm"
+    else:
+        if reader.has("hole_angle_deg"):
+            raise reader.error("hole_angle_deg", "only with hole_axes_nm (ellipses)",
+                               reader.raw("hole_angle_deg"))
+        radius = reader.length("hole_radius_nm", 0.25 * period * 1e9, minimum=0.0,
+                               exclusive_minimum=True)
+        holes = HoleLattice(lattice, period, (radius, radius), 0.0, circular=True)
+        key = "hole_radius_nm"
+    wall = hole_wall(holes)
+    if wall <= 0:
+        raise reader.error(key, f"neighbouring holes overlap on the {lattice} lattice of "
+                           f"period {period * 1e9:.4g} nm (wall {wall * 1e9:.3g} nm)",
+                           reader.raw(key, None))
+    return holes
+
+
+def hole_wall(h: HoleLattice) -> float:
+    """Narrowest wall of film between neighbouring holes (m; negative when they overlap).
+
+    Two holes related by a lattice vector d are translates of one centrally symmetric
+    ellipse E, so their distance is the distance from the point d to E - E = 2E (the
+    ellipse with doubled semi-axes); sampled on 2048 boundary points (relative error
+    < 2e-6 of the period, common practice, no source).
+    """
+    a, b = h.semi_axes_m
+    t = np.linspace(0.0, 2.0 * np.pi, 2048, endpoint=False)
+    c, s = math.cos(h.angle_rad), math.sin(h.angle_rad)
+    ex = 2 * a * np.cos(t) * c - 2 * b * np.sin(t) * s
+    ey = 2 * a * np.cos(t) * s + 2 * b * np.sin(t) * c
+    (a1x, a1y), (a2x, a2y) = h.a1, h.a2
+    best = math.inf
+    for i, j in ((1, 0), (0, 1), (1, 1), (1, -1), (2, -1), (-1, 2)):
+        dx, dy = i * a1x + j * a2x, i * a1y + j * a2y
+        d = float(np.min(np.hypot(ex - dx, ey - dy)))
+        # inside 2E means the holes overlap: report minus the depth
+        inside = (((dx * c + dy * s) / (2 * a)) ** 2 + ((-dx * s + dy * c) / (2 * b)) ** 2) < 1
+        best = min(best, -d if inside else d)
+    return best
+
+
+def _read_layers(reader: TableReader, ctx: SampleContext):
+    """``layers = [{material, thickness_nm, side}]`` and ``substrate``: unpatterned extras."""
+    value = reader.raw("layers", [])
+    if not isinstance(value, list):
+        raise reader.error("layers", "must be a list of tables {material, thickness_nm, "
+                           'side = "below" | "above"}', value)
+    below, above = [], []
+    for j, entry in enumerate(value):
+        sub = TableReader(entry, reader.key(f"layers.{j}"), reader.source)
+        mat = base.resolve(sub, "material", sub.raw("material"), ctx)
+        t = sub.length("thickness_nm", minimum=0.0, exclusive_minimum=True)
+        side = sub.string("side", "below", choices=("below", "above"))
+        sub.finish()
+        (below if side == "below" else above).append((mat, t))
+    substrate = None
+    if reader.has("substrate"):
+        substrate = base.resolve(reader, "substrate", reader.raw("substrate"), ctx)
+    return tuple(below), tuple(above), substrate
+
+
+def stack_layers(p: MembraneParams, thickness_m=None):
+    """``(eps_below, [(thickness_m, eps or "film"), ...] bottom to top, eps_above)``.
+
+    The film itself appears as ``"film"`` so callers can substitute a patterned layer;
+    ``thickness_m`` overrides the film thickness (may be a JAX tracer).
+    """
+    t = p.thickness_m if thickness_m is None else thickness_m
+    rows = [(th, m.eps) for m, th in reversed(p.layers_below)]
+    rows.append((t, "film"))
+    rows += [(th, m.eps) for m, th in p.layers_above]
+    below = p.substrate.eps if p.substrate is not None else 1.0 + 0j
+    return complex(below), rows, 1.0 + 0j
+
+
+def film_bottom_m(p: MembraneParams) -> float:
+    """z of the film's bottom face when the lowest layer starts at z = 0."""
+    return float(sum(th for _, th in p.layers_below))
 
 
 def _make(material, thickness, period, widths, centers, wavelength):
@@ -157,6 +328,23 @@ def to_table(p: MembraneParams) -> dict:
         t["period_nm"] = p.period_m * 1e9
         t["slit_widths_nm"] = [w * 1e9 for w in p.slit_widths_m]
         t["slit_centers_nm"] = [c * 1e9 for c in p.slit_centers_m]
+    if p.holes is not None:
+        h = p.holes
+        t["lattice"] = h.lattice
+        t["period_nm"] = h.period_m * 1e9
+        if h.circular:
+            t["hole_radius_nm"] = h.semi_axes_m[0] * 1e9
+        else:
+            t["hole_axes_nm"] = [h.semi_axes_m[0] * 1e9, h.semi_axes_m[1] * 1e9]
+            t["hole_angle_deg"] = math.degrees(h.angle_rad)
+    layers = ([{"material": m.spec, "thickness_nm": th * 1e9, "side": "below"}
+               for m, th in p.layers_below]
+              + [{"material": m.spec, "thickness_nm": th * 1e9, "side": "above"}
+                 for m, th in p.layers_above])
+    if layers:
+        t["layers"] = layers
+    if p.substrate is not None:
+        t["substrate"] = p.substrate.spec
     if p.freeform is not None:
         t["freeform"] = freeform_region.to_table(p.freeform)
     return t
@@ -165,10 +353,31 @@ def to_table(p: MembraneParams) -> dict:
 # ------------------------------------------------------------------------ variables
 def _spec_values(p: MembraneParams) -> dict[str, float]:
     v = {"thickness_nm": p.thickness_m * 1e9}
+    if p.holes is not None:
+        return {**v, **_hole_values(p.holes)}
     for j, (w, c) in enumerate(zip(p.slit_widths_m, p.slit_centers_m)):
         v[f"slit_widths_nm.{j}"] = w * 1e9
         v[f"slit_centers_nm.{j}"] = c * 1e9
     return v
+
+
+def _hole_values(h: HoleLattice) -> dict[str, float]:
+    v = {"period_nm": h.period_m * 1e9}
+    if h.circular:
+        v["hole_radius_nm"] = h.semi_axes_m[0] * 1e9
+    else:
+        v["hole_axes_nm.0"] = h.semi_axes_m[0] * 1e9
+        v["hole_axes_nm.1"] = h.semi_axes_m[1] * 1e9
+    return v
+
+
+def _holes_from(h: HoleLattice, v: dict) -> HoleLattice:
+    if h.circular:
+        r = v["hole_radius_nm"] * 1e-9
+        axes = (r, r)
+    else:
+        axes = (v["hole_axes_nm.0"] * 1e-9, v["hole_axes_nm.1"] * 1e-9)
+    return HoleLattice(h.lattice, v["period_nm"] * 1e-9, axes, h.angle_rad, h.circular)
 
 
 def variables(p: MembraneParams) -> dict[str, tuple[float, float, float]]:
@@ -180,6 +389,16 @@ def variables(p: MembraneParams) -> dict[str, tuple[float, float, float]]:
     """
     lam_nm = p.wavelength_m * 1e9
     out = {"thickness_nm": (p.thickness_m * 1e9, 0.005 * lam_nm, 2.0 * lam_nm)}
+    if p.holes is not None:
+        # holes: period 0.2..2 wavelengths; semi-axes up to what keeps a wall at the
+        # present period (the fabrication rules tighten these further)
+        h = p.holes
+        P = h.period_m * 1e9
+        out["period_nm"] = (P, 0.2 * lam_nm, 2.0 * lam_nm)
+        for key, val in _hole_values(h).items():
+            if key != "period_nm":
+                out[key] = (val, 0.01 * P, 0.5 * P)
+        return {k: (v, min(lo, v), max(hi, v)) for k, (v, lo, hi) in out.items()}
     n = len(p.slit_widths_m)
     if n:
         P = p.period_m * 1e9
@@ -209,6 +428,14 @@ def replace(p: MembraneParams, values: dict[str, float]) -> MembraneParams:
         raise ValueError("membrane: thickness must be > 0")
     if p.pattern == "none":
         return dataclasses.replace(p, thickness_m=v["thickness_nm"] * 1e-9)
+    if p.holes is not None:
+        holes = _holes_from(p.holes, v)
+        if not (holes.period_m > 0 and min(holes.semi_axes_m) > 0):
+            raise ValueError("membrane: period and hole size must be > 0")
+        if hole_wall(holes) <= 0:
+            raise ValueError("membrane: neighbouring holes overlap")
+        return dataclasses.replace(p, thickness_m=v["thickness_nm"] * 1e-9, holes=holes,
+                                   period_m=holes.period_m)
     n = len(p.slit_widths_m)
     q = _make(p.material, v["thickness_nm"] * 1e-9, p.period_m,
               [v[f"slit_widths_nm.{j}"] * 1e-9 for j in range(n)],
@@ -221,6 +448,53 @@ def replace(p: MembraneParams, values: dict[str, float]) -> MembraneParams:
 
 
 # ------------------------------------------------------------------------ geometry
+def hole_chords(h: HoleLattice, y_m: float) -> list[tuple[float, float]]:
+    """(centre x, width) of the hole chords on the line y = ``y_m`` in one period [0, P)
+    along x (a1), from the holes of the nearby lattice rows; overlapping chords merged."""
+    a, b = h.semi_axes_m
+    c, s = math.cos(h.angle_rad), math.sin(h.angle_rad)
+    (a1x, _), (a2x, a2y) = h.a1, h.a2
+    P = h.period_m
+    out = []
+    for j in range(-3, 4):
+        cy = j * a2y
+        cx0 = j * a2x
+        # ellipse quadratic in x at fixed y: A x^2 + B x + C = 0, local coords about centre
+        dy = y_m - cy
+        A = (c / a) ** 2 + (s / b) ** 2
+        B = 2 * dy * (c * s / a**2 - c * s / b**2)
+        C = (s * dy / a) ** 2 + (c * dy / b) ** 2 - 1.0
+        disc = B * B - 4 * A * C
+        if disc <= 0:
+            continue
+        half = math.sqrt(disc) / (2 * A)
+        mid = -B / (2 * A) + cx0
+        out.append(((mid % P), 2 * half))
+    out.sort()
+    merged = []
+    for cx, w in out:
+        if merged and cx - 0.5 * w < merged[-1][0] + 0.5 * merged[-1][1]:
+            lo = merged[-1][0] - 0.5 * merged[-1][1]
+            hi = max(merged[-1][0] + 0.5 * merged[-1][1], cx + 0.5 * w)
+            merged[-1] = (0.5 * (lo + hi), hi - lo)
+        else:
+            merged.append((cx, w))
+    return merged
+
+
+def section(p: MembraneParams, y_m: float = 0.0) -> MembraneParams:
+    """The x-z cross-section of a hole membrane at y = ``y_m``: a film with the hole
+    chords as slits (for pictures and the Yee-grid layout); other patterns unchanged."""
+    if p.holes is None:
+        return p
+    chords = [(cx, w) for cx, w in hole_chords(p.holes, y_m) if w > 1e-3 * p.holes.period_m]
+    if not chords or sum(w for _, w in chords) >= p.holes.period_m:
+        return MembraneParams(p.material, p.thickness_m, "none", None,
+                              wavelength_m=p.wavelength_m)
+    return _make(p.material, p.thickness_m, p.holes.period_m, [w for _, w in chords],
+                 [cx for cx, _ in chords], p.wavelength_m)
+
+
 def _period(p: MembraneParams, dx: float | None = None) -> float:
     if p.pattern == "slits":
         return p.period_m
@@ -259,7 +533,12 @@ def _electron_x(p: MembraneParams, ctx: SampleContext) -> float:
 
 
 def layout(p: MembraneParams, ctx: SampleContext, grid_step_m: float) -> SimulationLayout:
-    """z: PML, margin, path room, film, path room, margin, PML; x: one Bloch period."""
+    """z: PML, margin, path room, film, path room, margin, PML; x: one Bloch period.
+
+    A hole membrane is laid out as its cross-section through the path (``section``).
+    """
+    if p.holes is not None:
+        return layout(section(p), ctx, grid_step_m)
     if p.pattern == "slits":
         nx = base.cells_per_period(p.period_m, grid_step_m)
         dx = p.period_m / nx
@@ -321,6 +600,10 @@ def permittivity(p: MembraneParams, layout: SimulationLayout, values: dict | Non
 
     Farjadpour et al., Opt. Lett. 31, 2972, 2006 (see designer.families.raster).
     """
+    if p.holes is not None:
+        if values:
+            p = replace(p, values)
+        return permittivity(section(p), layout)
     v = _spec_values(p)
     if values:
         base.check_values(values, v, NAME)
@@ -336,13 +619,18 @@ def permittivity(p: MembraneParams, layout: SimulationLayout, values: dict | Non
 
 
 def layer_stack(p: MembraneParams, ctx: SampleContext) -> LayerStack | None:
-    """Vacuum / film / vacuum for an unpatterned membrane (film bottom at z = 0)."""
+    """Substrate (or vacuum) / layers / film / layers / vacuum for an unpatterned
+    membrane, film bottom at z = 0."""
     if p.pattern != "none":
         return None
-    return LayerStack(1.0 + 0j, 1.0 + 0j, ((p.thickness_m, p.material.eps),), 0.0)
+    below, rows, above = stack_layers(p)
+    rows = tuple((th, p.material.eps if e == "film" else complex(e)) for th, e in rows)
+    return LayerStack(below, above, rows, -film_bottom_m(p))
 
 
 def polygons(p: MembraneParams, ctx: SampleContext, layout: SimulationLayout) -> list[Polygon]:
+    if p.holes is not None:
+        return polygons(section(p), ctx, layout)
     g = layout.grid
     P = layout.period_m
     wide = max(3 * P, ctx.wavelength_m)
@@ -365,6 +653,16 @@ def features(p: MembraneParams) -> list[Feature]:
     """Film thickness, slit widths, bar widths and the etch depth through the film."""
     t = p.thickness_m
     out = [Feature("layer", t, (0.0, 0.5 * t), "membrane thickness")]
+    if p.holes is not None:
+        h = p.holes
+        wall = hole_wall(h)
+        hole = 2.0 * min(h.semi_axes_m)
+        out.append(Feature("gap", hole, (0.0, 0.5 * t), "hole diameter (smallest)"))
+        out.append(Feature("solid", wall, (0.5 * h.period_m, 0.5 * t),
+                           "wall between neighbouring holes"))
+        out.append(Feature("height", t, (0.0, 0.5 * t), "etch depth through the film",
+                           lateral_m=min(hole, wall)))
+        return out
     if p.pattern != "slits":
         return out
     lateral = []
@@ -384,6 +682,15 @@ def draw(ax, p: MembraneParams, ctx: SampleContext, layout: SimulationLayout, **
     """Picture of the sample; ``options`` go to :func:`designer.drawing.draw_sample`."""
     from designer import drawing
 
+    if p.holes is not None:
+        h = p.holes
+        size = (f"r = {h.semi_axes_m[0] * 1e9:.4g} nm" if h.circular else
+                f"a, b = {h.semi_axes_m[0] * 1e9:.4g}, {h.semi_axes_m[1] * 1e9:.4g} nm")
+        return drawing.draw_sample(
+            ax, polygons(p, ctx, layout), layout,
+            title=f"{h.lattice} holes, P = {h.period_m * 1e9:.4g} nm, {size}, "
+                  f"{p.thickness_m * 1e9:.4g} nm thick (section through hole centres)",
+            **{"periods": 3, **options})
     what = "unpatterned membrane" if p.pattern == "none" else \
         f"membrane with {len(p.slit_widths_m)} slit(s) per {p.period_m * 1e9:.4g} nm"
     periods = 3 if p.pattern == "slits" else 1

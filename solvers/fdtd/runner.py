@@ -369,13 +369,31 @@ def run_fdtd(problem: FdtdProblem, *, timeout_s: float = 600.0,
     Returns:
       FdtdResult with fields in SI units, normalized to the incident peak amplitude.
     """
+    result = run_worker(WORKER, problem.to_json(), _read_result, timeout_s=timeout_s,
+                        progress=progress)
+    if not result.converged:
+        warnings.warn(f"Meep run stopped before steady state (last relative change "
+                      f"{max(result.info['final_change']):.2e} > steady_tol "
+                      f"{problem.steady_tol:g}); raise max_periods", RuntimeWarning,
+                      stacklevel=2)
+    return result
+
+
+def run_worker(script: Path, payload: dict, read: Callable[[Path], object], *,
+               timeout_s: float, progress: Callable[[str], None] | None = None):
+    """Run a Meep worker script on ``payload`` (JSON) and ``read`` its npz output.
+
+    The worker runs as ``PYTHON script PROBLEM.json FIELDS.npz`` in a temporary folder
+    (optionally under ``$VELOMATCH_MEEP_LAUNCH``), in its own process group, killed
+    when ``timeout_s`` runs out; its progress lines go to ``progress``.
+    """
     python = meep_python()
     launch = shlex.split(os.environ.get(ENV_LAUNCH, ""))
     with tempfile.TemporaryDirectory(prefix="velomatch-fdtd-") as tmp:
         tmp = Path(tmp)
         src, dst = tmp / "problem.json", tmp / "fields.npz"
-        src.write_text(json.dumps(problem.to_json()), encoding="utf-8")
-        cmd = launch + [python, str(WORKER), str(src), str(dst)]
+        src.write_text(json.dumps(payload), encoding="utf-8")
+        cmd = launch + [python, str(script), str(src), str(dst)]
         with open(tmp / "stdout.txt", "w") as out:
             proc = subprocess.Popen(cmd, stdout=out, stderr=subprocess.PIPE, text=True,
                                     cwd=tmp, env=_worker_env(), start_new_session=True)
@@ -416,13 +434,7 @@ def run_fdtd(problem: FdtdProblem, *, timeout_s: float = 600.0,
         if rc != 0 or not dst.exists():
             tail = "\n".join(other[-20:])
             raise FdtdWorkerError(f"Meep worker failed (exit code {rc}): {' '.join(cmd)}\n{tail}")
-        result = _read_result(dst)
-    if not result.converged:
-        warnings.warn(f"Meep run stopped before steady state (last relative change "
-                      f"{max(result.info['final_change']):.2e} > steady_tol "
-                      f"{problem.steady_tol:g}); raise max_periods", RuntimeWarning,
-                      stacklevel=2)
-    return result
+        return read(dst)
 
 
 def _kill(proc: subprocess.Popen) -> None:
