@@ -97,17 +97,62 @@ def choose_method(spec: Spec) -> str:
     return "layers" if layered else "fdfd"
 
 
+CELLS_PER_DECAY_LENGTH = 6      # cells per evanescent decay length beta gamma lambda / 2 pi
+CELLS_PER_SURFACE_DISTANCE = 4  # cells between the electron and the nearest surface
+FINEST_DEFAULT_FRACTION = 0.25  # the default step is at least this share of the wavelength rule
+
+
+def electron_surface_distance(spec: Spec, layout=None) -> float | None:
+    """Distance (m) from an x-path to the nearest material, or None (paths along z,
+    or no material).  The path is the line z = z_e; the polygons of the cross-section
+    are convex pieces, so the distance is the smallest |z_vertex - z_e| of the pieces
+    that do not straddle the line."""
+    family = get_family(spec.family)
+    if layout is None:
+        layout = family.layout(spec.sample, spec.context, spec.laser.wavelength_m / 20.0)
+    if layout.path.direction != "x":
+        return None
+    z_e = layout.path.z_m
+    best = None
+    for poly in family.polygons(spec.sample, spec.context, layout):
+        z = np.asarray(poly.vertices_m)[:, 1]
+        d = 0.0 if z.min() <= z_e <= z.max() else float(np.min(np.abs(z - z_e)))
+        best = d if best is None else min(best, d)
+    return best
+
+
 def default_grid_step(spec: Spec, values: dict | None = None) -> float:
-    """Grid step from the wavelength and the densest material (solvers.fdfd.spacing_for:
-    DEFAULT_CELLS_PER_WAVELENGTH cells per wavelength there)."""
+    """Default FDFD grid step (m): the smallest of
+
+    * the wavelength rule: DEFAULT_CELLS_PER_WAVELENGTH cells per wavelength in the
+      densest material (solvers.fdfd.spacing_for);
+    * for paths along x, the evanescent decay length of the synchronous harmonic,
+      ``beta gamma lambda / 2 pi`` (e.g. R. J. England et al., Rev. Mod. Phys. 86, 1337,
+      2014), over CELLS_PER_DECAY_LENGTH, and the electron's distance to the nearest
+      surface over CELLS_PER_SURFACE_DISTANCE: the coupling falls off on that scale,
+      and the grid's second-order error in where an interface sits below the electron
+      shows as a jitter periodic in the cell size when a dimension is scanned;
+
+    but not finer than FINEST_DEFAULT_FRACTION of the wavelength rule (an electron a
+    nanometre from a surface must not make the default grid explode; give
+    ``[solver] grid_step_nm`` for more).
+    """
     from solvers.fdfd import spacing_for
+    from designer.families.base import decay_length
 
     family = get_family(spec.family)
     probe = family.layout(spec.sample, spec.context, spec.laser.wavelength_m / 20.0)
     eps_x, eps_z = family.permittivity(spec.sample, probe, values)
     eps_max = max(float(np.max(np.abs(np.asarray(eps_x)))),
                   float(np.max(np.abs(np.asarray(eps_z)))))
-    return spacing_for(spec.laser.wavelength_m, eps_max)
+    wave = spacing_for(spec.laser.wavelength_m, eps_max)
+    h = wave
+    if probe.path.direction == "x":
+        h = min(h, decay_length(spec.context) / CELLS_PER_DECAY_LENGTH)
+        d = electron_surface_distance(spec, probe)
+        if d:
+            h = min(h, d / CELLS_PER_SURFACE_DISTANCE)
+    return max(h, FINEST_DEFAULT_FRACTION * wave)
 
 
 def laser_footprint_radius(spec: Spec, angle_rad: float) -> float | None:
@@ -183,6 +228,10 @@ def run_fdfd(spec: Spec, grid_step_m: float, *, force: bool = False,
     path = layout.path
     map_x = map_i = map_z = map_zi = spot_z = spot_zi = spot_fraction = None
     if path.direction == "x":
+        g = layout.grid
+        rows = coupling.vacuum_ex_rows(np.asarray(eps_x), np.asarray(eps_z),
+                                       math.floor((path.z_m - g.z0) / g.dz),
+                                       layout.pml_cells_z)
         n_periods = 1
         if path.length_m is not None and layout.period_m:
             n_periods = max(1, int(round(path.length_m / layout.period_m)))
@@ -192,11 +241,11 @@ def run_fdfd(spec: Spec, grid_step_m: float, *, force: bool = False,
             g = layout.grid
             spot = (g.x0 + 0.5 * g.dx + 0.5 * n_periods * layout.period_m, radius)
         integral, _ = coupling.coupling_along_x(fields, path.z_m, v, n_periods=n_periods,
-                                                spot=spot)
+                                                spot=spot, rows=rows)
         if with_map:
             def along(z):
                 return complex(coupling.coupling_along_x(fields, z, v, n_periods=n_periods,
-                                                         spot=spot)[0])
+                                                         spot=spot, rows=rows)[0])
             gap = clear_gap(layout)
             if gap is not None:
                 map_z = np.linspace(gap[0], gap[1], 48)
