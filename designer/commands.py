@@ -48,16 +48,18 @@ def run_beam(args) -> int:
         "minimum_index_for_prism": 1.0 / e.beta,
         "prism": [],
     }
-    lines = [
-        f"electron at {args.voltage_kV:g} kV",
-        f"  gamma                  {e.gamma:.6f}",
-        f"  beta = v/c             {e.beta:.6f}",
-        f"  speed                  {e.velocity_m_per_s:.6e} m/s",
-        f"  de Broglie wavelength  {e.de_broglie_wavelength_m * 1e12:.4f} pm",
-        f"phase matching at {args.wavelength_nm:g} nm",
-        f"  grating period (m={args.order})   {result['grating_period_m'] * 1e9:.2f} nm",
-        f"  evanescent decay length  {result['evanescent_decay_length_m'] * 1e9:.2f} nm",
-        f"  prism needs n > 1/beta = {1.0 / e.beta:.4f}",
+    rows = [
+        (f"electron at {args.voltage_kV:g} kV", None),
+        ("gamma", f"{e.gamma:.6f}"),
+        ("beta = v/c", f"{e.beta:.6f}"),
+        ("speed", f"{e.velocity_m_per_s:.6e} m/s"),
+        ("de Broglie wavelength", f"{e.de_broglie_wavelength_m * 1e12:.4f} pm"),
+        (f"phase matching at {args.wavelength_nm:g} nm", None),
+        (f"grating period (order m = {args.order})",
+         f"{result['grating_period_m'] * 1e9:.2f} nm"),
+        ("field decay length (1/e)", f"{result['evanescent_decay_length_m'] * 1e9:.2f} nm "
+                                     "(of the synchronous evanescent field)"),
+        ("prism index needed", f"n > 1/beta = {1.0 / e.beta:.4f}"),
     ]
     for n in args.index or []:
         entry = {"index": n}
@@ -65,15 +67,76 @@ def run_beam(args) -> int:
             entry["cherenkov_angle_deg"] = math.degrees(beam.cherenkov_angle(n, e.beta))
             entry["incidence_angle_deg"] = math.degrees(
                 beam.phase_matching_incidence_angle(n, e.beta))
-            lines.append(f"  n = {n:g}: Cherenkov angle {entry['cherenkov_angle_deg']:.3f} deg, "
-                         f"incidence {entry['incidence_angle_deg']:.3f} deg from the normal")
+            rows.append((f"prism n = {n:g}",
+                         f"Cherenkov angle {entry['cherenkov_angle_deg']:.3f}°, incidence "
+                         f"{entry['incidence_angle_deg']:.3f}° from the normal"))
         else:
             entry["cherenkov_angle_deg"] = None
             entry["incidence_angle_deg"] = None
-            lines.append(f"  n = {n:g}: cannot phase-match (n*beta = {n * e.beta:.4f} <= 1)")
+            rows.append((f"prism n = {n:g}",
+                         f"cannot phase-match (n*beta = {n * e.beta:.4f} <= 1)"))
         result["prism"].append(entry)
+    width = max(len(k) for k, v in rows if v is not None)
+    lines = [k if v is None else f"  {k:<{width}}  {v}" for k, v in rows]
     result["provenance"] = provenance()
     _emit(args, result, "\n".join(lines))
+    return 0
+
+
+# -- materials -------------------------------------------------------------------
+
+_MODEL_WORDS = {"Sellmeier": "Sellmeier", "Cauchy": "Cauchy", "DrudeLorentz": "Drude-Lorentz",
+                "ConstantIndex": "constant index", "ConstantPermittivity": "constant eps",
+                "Tabulated": "table", "Spliced": "table + Sellmeier"}
+
+
+def run_materials(args) -> int:
+    """``velomatch materials``: the catalogue with model, valid range, source, index."""
+    from designer import units
+    from designer.materials import aliases, catalogue
+
+    lam = None
+    if args.wavelength_nm is not None:
+        if not args.wavelength_nm > 0:
+            raise UsageError(f"--wavelength-nm = {args.wavelength_nm!r}: must be > 0")
+        lam = args.wavelength_nm * 1e-9
+    names_for = {}
+    for alias, name in aliases().items():
+        names_for.setdefault(name, []).append(alias)
+    entries, rows = [], []
+    for name, m in catalogue().items():
+        lo, hi = m.valid_range_m
+        entry = {"name": name, "kind": m.kind,
+                 "model": _MODEL_WORDS.get(type(m.model).__name__, type(m.model).__name__),
+                 "valid_range_m": [lo, hi if math.isfinite(hi) else None],
+                 "source": m.source, "note": m.note, "aliases": sorted(names_for.get(name, []))}
+        index = ""
+        if lam is not None:
+            n = complex(m.index(lam, warn=False))
+            inside = bool(m.in_range(lam))
+            entry["index_at_wavelength"] = [n.real, n.imag]
+            entry["wavelength_in_range"] = inside
+            index = f"{n.real:.4f}" + (f"{n.imag:+.4f}i" if abs(n.imag) > 1e-6 else "") \
+                + ("" if inside else " (outside range)")
+        entries.append(entry)
+        span = (f"{units.length(lo, 3)} - " + (units.length(hi, 3) if math.isfinite(hi)
+                                               else "(no upper limit)")) if lo > 0 or \
+            math.isfinite(hi) else "all"
+        rows.append((name, entry["model"], span, index))
+    head = ("name", "model", "valid range", f"n at {args.wavelength_nm:g} nm" if lam else "")
+    widths = [max(len(r[i]) for r in rows + [head]) for i in range(4)]
+    lines = ["  ".join(c.ljust(w) for c, w in zip(head, widths)).rstrip()]
+    lines += ["  ".join(c.ljust(w) for c, w in zip(r, widths)).rstrip() for r in rows]
+    lines.append("")
+    lines.append("sources")
+    for e in entries:
+        extra = f" ({e['note']})" if e["note"] else ""
+        also = f"; also written {', '.join(e['aliases'])}" if e["aliases"] else ""
+        lines.append(f"  {e['name']}: {e['source']}{extra}{also}")
+    lines.append("")
+    lines.append('In a spec: material = "NAME", or { n = 2.0 }, { n = 2.0, k = 0.01 }.')
+    _emit(args, {"materials": entries, "wavelength_m": lam, "provenance": provenance()},
+          "\n".join(lines))
     return 0
 
 
@@ -81,40 +144,71 @@ def _status(message: str) -> None:
     print(f"  {message}", file=sys.stderr, flush=True)
 
 
+def _rules_text(result: dict) -> list[str]:
+    """The plane's assumption and the design-rule verdict (the check export applies)."""
+    out = []
+    plane = result.get("plane") or {}
+    if plane.get("assumption"):
+        out.append(f"  plane                     wafer ({plane['assumption']})")
+    rules = result.get("design_rules")
+    if rules is not None:
+        head = "clean" if rules["clean"] else f"{len(rules['violations'])} violation(s)"
+        if rules["not_checked"]:
+            head += " (not checked: " + "; ".join(rules["not_checked"]) + ")"
+        out.append(f"  design-rule check         {head}")
+        out += [f"    {v['message']}" for v in rules["violations"][:10]]
+    return out
+
+
 def _coupling_text(result: dict) -> str:
-    c = result["coupling"]
-    lines = [f"sample: {result['sample']['family']}  "
-             f"({result['provenance']['solver']}, "
-             + (f"step {result['provenance']['grid_step_m'] * 1e9:.3g} nm)"
-                if result["provenance"]["grid_step_m"] else "exact)"),
-             f"  laser angle               {result['laser']['angle_deg']:.3f} deg",
-             f"  peak field (incidence)    {result['laser']['peak_field_V_per_m']:.4g} V/m",
-             f"  coupling integral |I|     {math.hypot(*c['integral_V']):.4g} V",
-             f"  |beta_c|                  {c['beta_c']:.4g}",
-             f"  |beta_c| per field        {c['beta_c_per_field_m_per_V']:.4g} m/V"]
-    if c["gradient_V_per_m"] is not None:
-        lines.append(f"  gradient G                {c['gradient_V_per_m']:.4g} V/m "
-                     f"(over {c['gradient_length_m'] * 1e6:.4g} um)")
-        lines.append(f"  structure factor G/E0     {c['structure_factor']:.4g}")
-    if c["max_field_in_material_V_per_m"] is not None:
-        lines.append(f"  max field in material     {c['max_field_in_material_V_per_m']:.4g} V/m")
-    if c["damage_factor"] is not None:
-        lines.append(f"  damage factor G/E_max     {c['damage_factor']:.4g}")
+    """The ``evaluate`` result for people: set-up, sample as evaluated, figures, notes."""
+    from designer import units
+    from designer.resolved import sample_lines
+
+    c, prov, las = result["coupling"], result["provenance"], result["laser"]
+    solver = (f"FDFD, grid step {units.length(prov['grid_step_m'], 3)}"
+              if prov["grid_step_m"] else "exact layer-stack solution")
     err = c["relative_error_estimate"]
-    lines.append("  relative error estimate   " + ("n/a" if err is None else f"{err:.2%}"))
-    lines.extend(_caution(result["laser"]["peak_field_V_per_m"]))
+    figures = [
+        ("coupling integral |I|", f"{math.hypot(*c['integral_V']):.4g} V"),
+        ("|beta_c|", f"{c['beta_c']:.4g}"),
+        ("|beta_c| per field", f"{c['beta_c_per_field_m_per_V']:.4g} m/V"),
+    ]
+    if c["gradient_V_per_m"] is not None:
+        figures.append(("gradient G = |I|/L", f"{units.field(c['gradient_V_per_m'])} over "
+                        f"L = {units.length(c['gradient_length_m'])} "
+                        f"({c.get('gradient_length_rule', '')})"))
+        figures.append(("structure factor G/E0", f"{c['structure_factor']:.4g}"))
+    if c["max_field_in_material_V_per_m"] is not None:
+        figures.append(("max field in material",
+                        f"{units.field(c['max_field_in_material_V_per_m'])} "
+                        f"({c['max_field_rule']})"))
+    if c["damage_factor"] is not None:
+        figures.append(("damage factor G/E_max", f"{c['damage_factor']:.4g}"))
+    figures.append(("relative error estimate", "n/a" if err is None else units.percent(err)))
+    width = max(len(k) for k, _ in figures)
+    e = result["electron"]
+    lines = [f"{result['sample']['family']} sample ({solver})",
+             f"  beam   {units.voltage(e['voltage_V'])} (beta = {e['beta']:.5f})",
+             f"  laser  {units.length(las['wavelength_m'])}, "
+             f"{units.degrees(las['angle_deg'])} from {las['from']}, "
+             f"peak field {units.field(las['peak_field_V_per_m'])} in the incidence medium",
+             "sample as evaluated"]
+    lines.extend(sample_lines(result["sample"]))
+    lines.append("coupling")
+    lines.extend(f"  {k:<{width}}  {v}" for k, v in figures)
+    lines.extend(_rules_text(result))
+    for note in result.get("notes", []):
+        lines.extend(["", "Note: " + note])
+    lines.extend(_caution(las["peak_field_V_per_m"]))
     return "\n".join(lines)
 
 
 def _caution(peak_field_V_per_m: float) -> list[str]:
-    """A safety line for outputs that describe a real laser (fields above 1 MV/m)."""
-    if peak_field_V_per_m is None or peak_field_V_per_m < 1e6:
-        return []
-    from designer.cli import SAFETY_NOTE
+    """Safety lines for outputs that describe a real laser (designer.cautions)."""
+    from designer.cautions import caution_lines
 
-    return ["", "Caution: these fields come from an intense (typically class-4) laser and "
-            "can damage the sample; check the damage factor against your material's "
-            "threshold.", SAFETY_NOTE]
+    return caution_lines(peak_field_V_per_m)
 
 
 def run_evaluate(args) -> int:
@@ -122,9 +216,8 @@ def run_evaluate(args) -> int:
     from designer.spec import load_spec
 
     spec = load_spec(args.spec)
-    if not args.json:
-        print(f"evaluating {args.spec}", file=sys.stderr)
-    ev = evaluate(spec, progress=None if args.json else _status)
+    print(f"evaluating {args.spec}", file=sys.stderr)
+    ev = evaluate(spec, progress=_status)
     result = evaluation_json(ev)
     if args.out:
         vio.write_json(args.out, result)
@@ -183,25 +276,53 @@ def spectrum_of(ev) -> dict:
             "_lines": lines}
 
 
-def run_spectrum(args) -> int:
+def spectrum_result(ev) -> tuple[dict, object]:
+    """The ``spectrum --json`` object of an evaluation (notes, cautions, provenance
+    included) and the line spectrum behind it (for the picture)."""
+    from designer.cautions import cautions
+    from designer.resolved import spectrum_notes
+
+    result = spectrum_of(ev)
+    lines = result.pop("_lines")
+    notes = spectrum_notes(ev)
+    if result["averaged_over"]["laser_duration_s"] is None:
+        notes.append("Pulse averaging skipped: it needs both [laser] duration_fs and "
+                     "[spectrum] electron_pulse_fs; the lines are those of the peak field.")
+    result["notes"] = notes
+    result["cautions"] = cautions(ev.peak_field_V_per_m)
+    result["provenance"] = provenance(ev.spec.sha256, solver=ev.solver,
+                                      grid_step_m=ev.run.grid_step_m)
+    return result, lines
+
+
+def spectrum_picture(path, result: dict, lines) -> None:
+    """Write the spectrum picture of a :func:`spectrum_result`."""
     from designer import spectrum
+
+    short = ["pulse averaging skipped (set [laser] duration_fs and [spectrum] "
+             "electron_pulse_fs)"] if result["averaged_over"]["laser_duration_s"] is None \
+        else []
+    spectrum.plot_spectrum(path, result["energy_eV"], result["density_per_eV"], lines,
+                           title=f"PINEM spectrum, |β_c| = {result['beta_c_peak']:.3g}",
+                           notes=short)
+
+
+def run_spectrum(args) -> int:
     from designer.evaluate import evaluate
     from designer.spec import load_spec
 
     spec = load_spec(args.spec)
-    ev = evaluate(spec, refine=False, progress=None if args.json else _status)
-    result = spectrum_of(ev)
-    lines = result.pop("_lines")
+    ev = evaluate(spec, refine=False, progress=_status)
+    result, lines = spectrum_result(ev)
     if args.plot:
-        spectrum.plot_spectrum(args.plot, result["energy_eV"], result["density_per_eV"], lines,
-                               title=f"PINEM spectrum, |beta_c| = {result['beta_c_peak']:.3g}")
-    result["provenance"] = provenance(spec.sha256, solver=ev.solver,
-                                      grid_step_m=ev.run.grid_step_m)
+        spectrum_picture(args.plot, result, lines)
     strongest = sorted(zip(lines.orders, lines.probability), key=lambda t: -t[1])[:5]
     text = [f"PINEM spectrum: |beta_c| = {result['beta_c_peak']:.4g}, "
             f"photon energy {result['photon_energy_eV']:.4g} eV, "
             f"zero-loss width {spec.spectrum.zlp_fwhm_eV:g} eV",
             "  strongest lines: " + ", ".join(f"l={int(o)}: {p:.3g}" for o, p in strongest)]
+    for note in result["notes"]:
+        text.extend(["", "Note: " + note])
     text.extend(_caution(ev.peak_field_V_per_m))
     _emit(args, result, "\n".join(text))
     return 0

@@ -400,6 +400,8 @@ def _assemble(candidates, footing, scans) -> dict:
             "name": c.name, "source": c.source, "family": c.family,
             "angle_deg": c.angle_deg, "spec": c.raw,
             "coupling": result["coupling"], "provenance": result.get("provenance"),
+            "peak_field_V_per_m": result.get("laser", {}).get("peak_field_V_per_m"),
+            "design_rules": result.get("design_rules"),
             "tolerance_10nm": tolerance,
             "angular_bandwidth_deg": bands["angle"],
             "spectral_bandwidth_nm": bands["wavelength"],
@@ -408,7 +410,11 @@ def _assemble(candidates, footing, scans) -> dict:
                    key=lambda k: -(entries[k]["coupling"].get("beta_c_per_field_m_per_V") or 0.0))
     for rank, k in enumerate(order, start=1):
         entries[k]["rank"] = rank
-    return {"footing": footing, "ranking": [entries[k]["name"] for k in order],
+    from designer.cautions import cautions
+
+    fields = [e["peak_field_V_per_m"] for e in entries if e["peak_field_V_per_m"] is not None]
+    return {"footing": footing, "cautions": cautions(max(fields, default=None)),
+            "ranking": [entries[k]["name"] for k in order],
             "ranked_on": "coupling.beta_c_per_field_m_per_V (descending)",
             "candidates": [entries[k] for k in order],
             "definitions": {
@@ -442,6 +448,14 @@ def _tol_text(tol: dict) -> str:
            f"{tol['worst_change_nm']:+g} nm)"
 
 
+def _rules_cell(entry: dict) -> str:
+    """The candidate's design-rule verdict (the check export applies)."""
+    rules = entry.get("design_rules")
+    if rules is None:
+        return "n/a"
+    return "clean" if rules["clean"] else f"{len(rules['violations'])} violation(s)"
+
+
 def ranking_table(data: dict) -> rp.Table:
     rows, ids = [], []
     for e in data["candidates"]:
@@ -449,11 +463,12 @@ def ranking_table(data: dict) -> rp.Table:
         rows.append((str(e["rank"]), e["name"], e["family"], headline(e),
                      rp.fmt(c.get("beta_c_per_field_m_per_V")), rp.fmt(c.get("structure_factor")),
                      rp.fmt(c.get("damage_factor")), _tol_text(e["tolerance_10nm"]),
-                     _bw_text(e["angular_bandwidth_deg"]), _bw_text(e["spectral_bandwidth_nm"])))
+                     _bw_text(e["angular_bandwidth_deg"]), _bw_text(e["spectral_bandwidth_nm"]),
+                     _rules_cell(e)))
         ids.append("candidate-" + "".join(ch if ch.isalnum() else "-" for ch in e["name"]))
     return rp.Table(columns=("rank", "candidate", "family", "|β_c|", "|β_c| per V/m", "κ",
                              "damage factor", "worst ±10 nm", "angular width",
-                             "spectral width"),
+                             "spectral width", "design rules"),
                     rows=tuple(rows), highlight=(0,), row_ids=tuple(ids),
                     caption="Ranked on |β_c| per unit incident field. Widths: full range "
                             "where |β_c| stays above 1/√2 of its nominal value.")
@@ -557,5 +572,7 @@ def compare_command(args, *, evaluator: Callable = _default_evaluator,
               f"kappa = {rp.fmt(e['coupling'].get('structure_factor')):<10} "
               f"damage = {rp.fmt(e['coupling'].get('damage_factor'))}")
     print(f"  json: {out_dir / 'compare.json'}\n  report: {html_path}")
+    for line in data["cautions"]:
+        print(line)
     return 0
 

@@ -151,7 +151,7 @@ def study_main(argv, *, description: str, default_out: Path, quick_help: str, ru
     """
     import argparse
 
-    from designer.cli import SAFETY_NOTE
+    from designer.cautions import SAFETY_NOTE
 
     p = argparse.ArgumentParser(description=description)
     p.add_argument("--quick", action="store_true", help=quick_help)
@@ -421,7 +421,7 @@ def _grating_report(out: Path, s: dict, design_dir: Path) -> Path:
         images.append(rp.image(out / "crosscheck.png", "Field along the path: FDFD and Meep"))
     rep = rp.Report(
         f"Grating study: {sc['voltage_kV']:g} kV beam, {sc['wavelength_nm']:g} nm laser",
-        subtitle=f"{sc['material']} tooth grating, {sc['path_length_um']:g} um path"
+        subtitle=f"{sc['material']} tooth grating, {sc['path_length_um']:g} µm path"
                  + (" (quick version)" if s["quick"] else ""),
         sections=(rp.Section("Headline numbers", (
                       rp.Facts((("structure factor κ after optimization",
@@ -479,7 +479,7 @@ def print_closing(out: Path, summary: dict) -> None:
 
 def demo_command(args) -> int:
     """``velomatch demo [--out DIR] [--overwrite]``: the quick grating study."""
-    from designer.cli import SAFETY_NOTE
+    from designer.cautions import SAFETY_NOTE
 
     out = prepare_study_dir(getattr(args, "out", None) or "demo-output",
                             overwrite=bool(getattr(args, "overwrite", False)))

@@ -515,13 +515,14 @@ def build_problem(spec: Spec, config: DesignConfig) -> DesignProblem:
     if config.density:
         chain, rho_start = _density_chain(spec, config, models)
         pattern_objective = obj.pattern_objective_function(
-            list(models), config.objective, config.aggregate, chain.shape, len(keys))
+            list(models), config.objective, config.aggregate, chain.param.shape, len(keys))
         objective = obj.freeform_objective_function(list(models), config.objective,
                                                     config.aggregate, chain, len(keys))
-        n = rho_start.size
+        raw_start = chain.param.reduce(rho_start)    # pattern -> design variables
+        n = raw_start.size
         box = opt.Box(np.concatenate([box.lower, np.zeros(n)]),
                       np.concatenate([box.upper, np.ones(n)]))
-        x_start = np.concatenate([x_start, rho_start.ravel()])
+        x_start = np.concatenate([x_start, raw_start.ravel()])
     names, fab_g = constraint_function(spec.fabrication, known)
     cap = (obj.field_cap_constraint(list(models), config.max_field_V_per_m)
            if config.max_field_V_per_m else None)
@@ -545,7 +546,12 @@ def build_problem(spec: Spec, config: DesignConfig) -> DesignProblem:
                             None, None, None, transform, chain=chain, rho_start=rho_start)
     problem = _finish_problem(problem, objective, constraints, penalty)
     if pattern_objective is not None:
-        pattern_loss = opt.make_loss(pattern_objective, constraints, problem.box, penalty)
+        # the pattern loss takes [continuous values, region pattern] (pattern-sized box)
+        n_pat = int(np.prod(chain.param.shape))
+        k = len(keys)
+        pattern_box = opt.Box(np.concatenate([problem.box.lower[:k], np.zeros(n_pat)]),
+                              np.concatenate([problem.box.upper[:k], np.ones(n_pat)]))
+        pattern_loss = opt.make_loss(pattern_objective, constraints, pattern_box, penalty)
         problem = dataclasses.replace(problem, pattern_evaluate=opt.make_evaluate(pattern_loss))
     return problem
 
@@ -605,8 +611,9 @@ def _density_chain(spec: Spec, config: DesignConfig, models) -> tuple:
     layout = models[0].layout
     try:
         cells = region.region_cells(fr, layout)
+        param = region.parametrization(fr, layout)
         for m in models[1:]:
-            if region.region_cells(fr, m.layout).shape != cells.shape:
+            if region.pattern_shape(fr, m.layout) != param.shape:
                 raise ValueError("the robust scenarios put the free-form region on grids "
                                  "of different sizes; drop the wavelength band")
     except ValueError as exc:
@@ -617,7 +624,8 @@ def _density_chain(spec: Spec, config: DesignConfig, models) -> tuple:
         delta = config.projection["delta_eta"]
         radius = ff.filter_radius_for_length(length, delta)
     g = layout.grid
-    chain = obj.DensityChain(cells.shape, g.dx, g.dz, cells.periodic_x, radius, delta)
+    chain = obj.DensityChain(param.raw_shape, g.dx, g.dz, cells.periodic_x, radius, delta,
+                             param=param)
     return chain, np.asarray(family.freeform_start(spec.sample, layout), dtype=float)
 
 
@@ -1029,26 +1037,34 @@ def _best_of(problem: DesignProblem, st: StartState) -> tuple[np.ndarray, dict]:
 
 
 def _violations(problem: DesignProblem, u, pattern=None) -> list[str]:
-    from designer.fabrication import design_rule_check
+    """The design-rule verdict of ``u`` (designer.fabrication.check_design: the same
+    check that evaluate, compare and export report), as messages."""
+    from designer.fabrication import check_design
 
-    family = get_family(problem.spec.family)
+    return check_design(problem.spec, _checked_params(problem, u, pattern),
+                        grid_step_m=problem.grid_step_m).messages
+
+
+def _checked_params(problem: DesignProblem, u, pattern=None):
     q = get_family(problem.spec.family).replace(problem.spec.sample, problem.values_of(u))
-    out = [v.message for v in design_rule_check(family.features(q), problem.spec.fabrication)]
     if problem.chain is not None:
-        out += [v.message for v in pattern_violations(problem, problem.binarized(u)
-                                                      if pattern is None else pattern)]
-    return out
+        from designer.families import region
+
+        pattern = problem.binarized(u) if pattern is None else pattern
+        q = dataclasses.replace(q, freeform=region.with_pattern(
+            q.freeform, np.asarray(pattern, dtype=float), problem.models[0].layout,
+            "<in memory>"))
+    return q
 
 
 def pattern_violations(problem: DesignProblem, pattern) -> list:
-    """freeform pattern_rule_check of a binarized region pattern (Violation list)."""
-    from designer.fabrication import pattern_rule_check
-    from designer.families import region
+    """The free-form part of the rule check for a binarized region pattern
+    (designer.fabrication.freeform_findings; Finding list)."""
+    from designer.fabrication import freeform_findings
 
-    c = problem.chain
-    origin = region.pixel_origin(problem.spec.sample.freeform, problem.models[0].layout)
-    return pattern_rule_check(np.asarray(pattern) > 0.5, c.dx, c.dz, problem.spec.fabrication,
-                              origin=origin, periodic_x=c.periodic_x)
+    u = opt.to_unit(problem.x_start, problem.box)
+    return freeform_findings(problem.spec, _checked_params(problem, u, pattern),
+                             problem.grid_step_m)
 
 
 def measured_features(problem: DesignProblem, pattern) -> tuple[float, float]:
@@ -1147,8 +1163,10 @@ def run_design(spec: Spec, out_dir: str | Path, config: DesignConfig, *, resume:
 # ---------------------------------------------------------------------------------
 def design_raw(spec: Spec, params) -> dict:
     """The spec tree with the ``[sample]`` table of ``params`` (a complete spec)."""
+    from designer.units import tidy
+
     raw = copy.deepcopy(spec.raw)
-    raw["sample"] = get_family(spec.family).to_table(params)
+    raw["sample"] = tidy(get_family(spec.family).to_table(params))
     return raw
 
 
@@ -1161,11 +1179,21 @@ def convergence_figure(result: DesignResult):
     cfg = result.problem.config
     fig = Figure(figsize=(6.4, 4.0))
     ax = fig.subplots()
+    from matplotlib.ticker import MaxNLocator
+
+    from designer.drawing import ELECTRON
+
     for st in result.starts:
         its = [r["iteration"] for r in st.history]
         ax.plot(its, [r["objective"] for r in st.history], marker=".",
                 label=f"start {st.index + 1}" + (" (best)" if st.index == result.best_start
                                                  else ""))
+    best = result.best_record
+    if best is not None and "iteration" in best:
+        ax.plot([best["iteration"]], [best["objective"]], marker="*", ms=14, ls="none",
+                color=ELECTRON, zorder=5,
+                label=f"best: iteration {best['iteration']}, {best['objective']:.4g}")
+    ax.xaxis.set_major_locator(MaxNLocator(integer=True))
     unit = {"coupling": "|beta_c|/E0 (m/V)", "structure_factor": "G/E0",
             "damage_factor": "G/E_max"}[cfg.objective]
     agg = f" ({cfg.aggregate} over {len(result.problem.models)} scenarios)" \
@@ -1240,7 +1268,11 @@ def comparison(result: DesignResult, start_eval: dict, design_eval: dict) -> tup
                   f"requested minimum length {fr['length_rule_m'] * 1e9:.4g} nm, measured "
                   f"smallest solid {fr['smallest_solid_m'] * 1e9:.4g} nm, void "
                   f"{fr['smallest_void_m'] * 1e9:.4g} nm (pixel steps)"]
-    lines += ["", "  design-rule check: " + ("clean" if not v else f"{len(v)} violation(s)")]
+    from designer.fabrication import check_design
+
+    verdict = check_design(p.spec, _checked_params(p, result.best_u), grid_step_m=p.grid_step_m)
+    data["design_rules"] = verdict.to_dict()
+    lines += ["", "  design-rule check (the check export applies): " + verdict.summary_line()]
     lines += [f"    {m}" for m in v]
     for s in data["starts"]:
         lines.append(f"  start {s['index'] + 1}: {s['iterations']} iterations, "
@@ -1282,7 +1314,13 @@ def write_outputs(result: DesignResult, out_dir: str | Path, *, status=None) -> 
     out = Path(out_dir)
     p = result.problem
     spec = p.spec
-    raw = design_raw(spec, p.design_params(result.best_u))
+    # stored as a cleanroom can make it, and evaluated as stored (design.toml is reloaded)
+    from designer.units import cleanroom_round
+
+    params = get_family(spec.family).replace(
+        p.design_params(result.best_u),
+        cleanroom_round(p.values_of(result.best_u), p.config.bounds))
+    raw = design_raw(spec, params)
     if p.chain is not None:
         # the pattern lives on the design grid: pin the step so evaluate uses that grid
         vio.write_atomic(out / "density.npy", _npy_bytes(p.binarized(result.best_u)))

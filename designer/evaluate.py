@@ -21,9 +21,15 @@ dielectrics the field is singular, so the sampled maximum does not converge.  Re
 corners are rounded: cells closer to a polygon corner than the fabrication rules'
 ``corner_radius_nm`` are left out of the maximum.  The rule used is reported.
 
-Open paths (electrons crossing a membrane) have no interaction length; their
-gradient, structure factor and damage factor use the structure's thickness along
-the path as the length (``gradient_length_m`` in the output).
+Open paths (electrons crossing a membrane) have no interaction length: the coupling
+is earned inside the film and in the vacuum on both sides, out to about one
+dephasing length ℓ_φ = 1/|k cos θ − ω/v| = (λ/2π) β/(1 − β cos θ) of the incident
+and transmitted waves (the distance over which their phase slips one radian against
+the electron).  Their gradient, structure factor and damage factor therefore use
+L = d + 2ℓ_φ (film thickness plus one dephasing length each side; see
+:func:`open_path_length`), so that films of different thickness compare and the
+damage factor does not exceed what the fields allow (``gradient_length_m`` and
+``gradient_length_rule`` in the output).
 """
 
 from __future__ import annotations
@@ -246,6 +252,24 @@ def laser_footprint_radius(spec: Spec, angle_rad: float) -> float | None:
     if w is None:
         return None
     return w / max(math.cos(angle_rad), 1e-3)
+
+
+def dephasing_length(spec: Spec, angle_rad: float) -> float:
+    """ℓ_φ = 1/|k cos θ − ω/v| (m): how far the electron travels along z while a
+    vacuum plane wave at angle θ from z slips one radian in phase against it."""
+    beta = spec.beam.beta
+    k = 2.0 * math.pi / spec.laser.wavelength_m
+    return 1.0 / (k * abs(1.0 / beta - math.cos(angle_rad)))
+
+
+def open_path_length(spec: Spec, angle_rad: float, thickness_m: float) -> float:
+    """L = d + 2ℓ_φ: the length over which an electron crossing a film of thickness d
+    earns its coupling (module docstring); the gradient of open paths is |I|/L."""
+    return thickness_m + 2.0 * dephasing_length(spec, angle_rad)
+
+
+OPEN_PATH_LENGTH_RULE = ("film thickness + one dephasing length 1/|k cos(angle) - omega/v| "
+                         "each side, where the vacuum fields add to the coupling")
 
 
 # -- one FDFD run --------------------------------------------------------------------
@@ -520,7 +544,7 @@ def evaluate(spec: Spec, *, grid_step_m: float | None = None, refine: bool | Non
         gradient_length = interaction
     else:
         bottom, top = layout.structure_z_m
-        gradient_length = (top - bottom) if top > bottom else None
+        gradient_length = open_path_length(spec, angle, max(top - bottom, 0.0))
     return Evaluation(spec=spec, solver=solver, angle_rad=angle, peak_field_V_per_m=e0,
                       omega=omega, run=run, relative_error=rel_error,
                       interaction_length_m=interaction, gradient_length_m=gradient_length,
@@ -550,6 +574,8 @@ def coupling_figures(ev: Evaluation) -> dict:
         "beta_c_per_field_m_per_V": beta / e0,
         "interaction_length_m": ev.interaction_length_m,
         "gradient_length_m": ev.gradient_length_m,
+        "gradient_length_rule": ("interaction length" if ev.run.layout.path.direction == "x"
+                                 else OPEN_PATH_LENGTH_RULE),
         "gradient_V_per_m": gradient,
         "structure_factor": kappa,
         "max_field_in_material_V_per_m": e_max,
@@ -592,7 +618,9 @@ def coupling_figures(ev: Evaluation) -> dict:
 
 def evaluation_json(ev: Evaluation) -> dict:
     """The full ``velomatch evaluate --json`` object (contract keys first)."""
+    from designer.cautions import cautions
     from designer.provenance import provenance
+    from designer.resolved import explanations, resolved_sample
 
     spec = ev.spec
     return {
@@ -603,11 +631,31 @@ def evaluation_json(ev: Evaluation) -> dict:
                   "angle_deg": math.degrees(ev.angle_rad),
                   "peak_field_V_per_m": ev.peak_field_V_per_m,
                   "from": spec.laser.from_side},
-        "sample": {"family": spec.family},
+        "sample": resolved_sample(ev),
         "coupling": coupling_figures(ev),
+        "cautions": cautions(ev.peak_field_V_per_m),
+        "notes": explanations(ev),
+        "plane": _plane_facts(spec),
+        "design_rules": _design_rules(spec, ev),
         "provenance": provenance(spec.sha256, solver=ev.solver,
                                  grid_step_m=ev.run.grid_step_m),
     }
+
+
+def _plane_facts(spec: Spec) -> dict:
+    from designer.families import region
+
+    info = getattr(spec.sample, "plane", None) or region.PlaneInfo()
+    return region.plane_facts(info, spec.context)
+
+
+def _design_rules(spec: Spec, ev: Evaluation) -> dict:
+    """The design-rule verdict (designer.fabrication.check_design), on the grid this
+    evaluation used for a free-form pattern."""
+    from designer.fabrication import check_design
+
+    step = ev.run.grid_step_m if getattr(spec.sample, "freeform", None) is not None else None
+    return check_design(spec, grid_step_m=step).to_dict()
 
 
 def evaluate_raw(raw: dict, *, source: str = "<spec>", base_dir=None, **options) -> dict:

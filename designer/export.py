@@ -66,6 +66,7 @@ import numpy as np
 from designer import io as vio
 from designer import layout as geo
 from designer.errors import SpecError, UsageError, VelomatchError
+from designer.fabrication import Finding
 from designer.tables import TableReader
 
 FORMATS = {".gds": "gds", ".gdsii": "gds", ".gds2": "gds", ".oas": "oasis", ".oasis": "oasis"}
@@ -196,6 +197,8 @@ def _off_grid(length_m: float, dbu_m: float) -> float | None:
 def top_view(spec, settings: LayoutSettings) -> geo.TopView:
     """The top view of a spec's sample; SpecError where the spec cannot give one."""
     p = spec.sample
+    if getattr(p, "plane", None) is not None and p.plane.plane == "wafer":
+        return wafer_top_view(spec, settings)
     if getattr(p, "freeform", None) is not None:
         return freeform_top_view(spec, settings)
     try:
@@ -225,7 +228,7 @@ def top_view(spec, settings: LayoutSettings) -> geo.TopView:
 
 def freeform_pattern(spec):
     """(layout, region cells, binarized solid pattern) of a spec's free-form region on
-    the grid its evaluation uses."""
+    the grid its evaluation uses (the pattern holds every part, designer.families.region)."""
     from designer.evaluate import default_grid_step
     from designer.families import get_family, region
 
@@ -236,15 +239,30 @@ def freeform_pattern(spec):
     return lay, cells, np.asarray(family.freeform_density(spec.sample, lay)) > 0.5
 
 
-def freeform_top_view(spec, settings: LayoutSettings) -> geo.TopView:
-    """Top view of a free-form grating or membrane (one etch step; see designer.layout).
+def _grating_periods(spec) -> int:
+    if spec.path.length_m is None:
+        raise SpecError(spec.source, "path.length_um", "needed to export a grating "
+                        "(the number of periods is round(length / period))")
+    n = geo.teeth_count(spec.path.length_m, spec.sample.period_m)
+    if n < 1:
+        raise SpecError(spec.source, "path.length_um", "shorter than half a period: "
+                        "the grating would have no periods", spec.path.length_m * 1e6)
+    return n
 
-    The region must span the whole period (its pixel columns are then the whole
-    pattern along x) and be columnar: every pixel column all solid or all void.
-    Grating: solid columns are lines, ``round(length / period)`` periods.  Membrane:
-    void columns are slits tiling the field; the region must span the film.
+
+def freeform_top_view(spec, settings: LayoutSettings) -> geo.TopView:
+    """Top view of a cross-section free-form grating or membrane (see designer.layout).
+
+    The region must span the whole period and, in each of its etch steps, be columnar
+    (designer.fabrication.freeform_findings says where it is not).  Each etch step is
+    one lithography level: its solid columns are lines (grating, ``round(length /
+    period)`` periods; a two-sided grating's upper side faces the lower one across the
+    channel, as for parametric gratings), drawn on layer ``layer + step``.  Membrane
+    (one step through the film): void columns are slits tiling the field.
     """
     from types import SimpleNamespace
+
+    from designer.families import region
 
     p = spec.sample
     fr = p.freeform
@@ -255,33 +273,65 @@ def freeform_top_view(spec, settings: LayoutSettings) -> geo.TopView:
         raise SpecError(spec.source, f"{key}.x_nm", "exporting a free-form region needs it "
                         "to span the whole period (x_nm from 0 to the period)",
                         [v * 1e9 for v in fr.x_m])
-    z_lo, z_hi = g.z0 + cells.k0 * g.dz, g.z0 + cells.k1 * g.dz
-    try:
-        geo.region_lines(solid, g.dx, g.x0, settings.line_length_m)   # columnar or refuse
-    except geo.LayoutError as exc:
-        raise SpecError(spec.source, key, str(exc)) from None
-    columns = solid[:, 0]
+    blocks = region.split(fr, lay, solid)
+    slabs = region.slab_rows(fr, lay)
+    rows = []                      # (part index, step index, columns)
+    for j, block in enumerate(blocks):
+        for k, (a, b) in enumerate(slabs):
+            slab = block[:, a:b]
+            if (slab.any(axis=1) & ~slab.all(axis=1)).any():
+                raise SpecError(spec.source, key, f"etch step {k + 1}: some pixel columns "
+                                "change material within the step; one etch step can only "
+                                "make columns that are solid or void all through")
+            rows.append((j, k, slab[:, 0]))
     if spec.family == "grating":
-        if p.sides != 1:
-            raise SpecError(spec.source, key, "exporting a free-form region of a "
-                            "double-sided grating is not supported", p.sides)
-        if spec.path.length_m is None:
-            raise SpecError(spec.source, "path.length_um", "needed to export a grating "
-                            "(the number of periods is round(length / period))")
-        n = geo.teeth_count(spec.path.length_m, p.period_m)
-        try:
-            return geo.freeform_lines_top_view(
-                columns, g.dx, n, settings.line_length_m, margin_m=settings.margin_m,
-                kind=f"free-form grating, {n} periods, etch depth "
-                     f"{(z_hi - z_lo) * 1e9:.4g} nm")
-        except geo.LayoutError as exc:
-            raise SpecError(spec.source, "path.length_um", str(exc)) from None
+        n = _grating_periods(spec)
+        union_cols = np.zeros(g.nx, dtype=bool)
+        for _, _, c in rows:
+            union_cols |= c
+        cut = geo.widest_void_centre(union_cols, g.dx)
+        L = settings.line_length_m
+        if p.sides == 1:
+            y_of = {0: (-0.5 * L, 0.5 * L)}
+        else:
+            y_of = {0: (-0.5 * p.gap_m - L, -0.5 * p.gap_m), 1: (0.5 * p.gap_m, 0.5 * p.gap_m + L)}
+        levels = []
+        for k in range(len(slabs)):
+            polys = []
+            for j, kk, c in rows:
+                if kk != k:
+                    continue
+                if j not in y_of:
+                    raise SpecError(spec.source, f"{key}.upper", "an upper region needs a "
+                                    "two-sided grating", fr.upper)
+                polys += geo.periodic_lines(c, g.dx, n, cut, y_of[j])
+            levels.append(tuple(polys))
+        if p.sides == 2 and fr.upper is None:
+            # the parametric upper grating, drawn as parametric gratings are
+            upper = geo.grating_top_view(p, n, L, width_at=settings.tooth_width_at)
+            ups = [q for q in upper.keep if q[:, 1].min() >= 0.5 * p.gap_m * (1 - 1e-9)]
+            levels[0] = tuple(geo.union(list(levels[0]) + ups))
+        P = p.period_m
+        ys = [v for r in y_of.values() for v in r]
+        # the period window starts and ends mid-void; grow that half void to a full one
+        void = _widest_void(union_cols) * g.dx
+        frame = geo.grow((-0.5 * n * P - 0.5 * void, min(ys), 0.5 * n * P + 0.5 * void,
+                          max(ys)), settings.margin_m)
+        z_lo, z_hi = g.z0 + cells.k0 * g.dz, g.z0 + cells.k1 * g.dz
+        sides = "two-sided " if p.sides == 2 else ""
+        kind = (f"free-form {sides}grating, {n} periods, {len(slabs)} etch step(s) over "
+                f"{(z_hi - z_lo) * 1e9:.4g} nm")
+        return geo.TopView(levels[0], frame, kind,
+                           levels=tuple(levels) if len(levels) > 1 else ())
     # membrane: the region must go through the film, its void columns are slits
+    z_lo, z_hi = g.z0 + cells.k0 * g.dz, g.z0 + cells.k1 * g.dz
     half = 0.5 * g.dz
-    if z_lo > half or z_hi < p.thickness_m - half:
+    if z_lo > half or z_hi < p.thickness_m - half or len(slabs) != 1:
         raise SpecError(spec.source, f"{key}.z_nm", "exporting a free-form membrane needs "
                         f"the region to span the film (z from 0 to "
-                        f"{p.thickness_m * 1e9:.4g} nm)", [v * 1e9 for v in fr.z_m])
+                        f"{p.thickness_m * 1e9:.4g} nm) in one etch step",
+                        [v * 1e9 for v in fr.z_m])
+    columns = rows[0][2]
     if columns.all():
         raise SpecError(spec.source, key, "the free-form pattern has no slits; the layout "
                         "would be the bare film")
@@ -295,6 +345,66 @@ def freeform_top_view(spec, settings: LayoutSettings) -> geo.TopView:
                                      electron_x_m=spec.path.x_m or 0.0)
     except geo.LayoutError as exc:
         raise SpecError(spec.source, "layout.field_um", str(exc)) from None
+
+
+def _widest_void(columns) -> int:
+    cols = np.asarray(columns, dtype=bool)
+    if cols.all():
+        return 0
+    if not cols.any():
+        return cols.size
+    rolled = np.roll(~cols, -int(np.argmax(cols)))      # start on a solid column
+    d = np.diff(np.concatenate([[0], rolled.astype(np.int8), [0]]))
+    return int((np.nonzero(d == -1)[0] - np.nonzero(d == 1)[0]).max())
+
+
+def wafer_top_view(spec, settings: LayoutSettings) -> geo.TopView:
+    """Top view of a wafer-plane sample: the simulated polygons themselves.
+
+    The simulated plane is the chip surface, so the cross-section polygons of one
+    period (family polygons, free-form pixels traced exactly) are drawn with x -> x and
+    z -> y, clipped to the simulated domain inside the PML (semi-infinite parts end
+    there), and repeated ``round(length / period)`` times along x, centred on x = 0.
+    The period window starts in the widest column that holds no patterned material,
+    so no pillar is cut at the ends.  The frame is the simulated domain: with tone
+    ``remove`` everything simulated as vacuum is etched.
+    """
+    import gdstk
+
+    from designer.evaluate import default_grid_step
+    from designer.families import get_family
+
+    p = spec.sample
+    family = get_family(spec.family)
+    h = spec.solver.grid_step_m or default_grid_step(spec)
+    lay = family.layout(p, spec.context, h)
+    g = lay.grid
+    P = lay.period_m
+    n = _grating_periods(spec)
+    z_lo = g.z0 + lay.pml_cells_z * g.dz
+    z_hi = g.z0 + (g.nz - lay.pml_cells_z) * g.dz
+    mask = np.asarray(lay.material_mask, dtype=bool)[:, lay.pml_cells_z:g.nz - lay.pml_cells_z]
+    patterned = mask[:, ~mask.all(axis=0)]          # rows that are not a full slab
+    free = ~patterned.any(axis=1) if patterned.size else np.ones(g.nx, dtype=bool)
+    cut = geo.widest_void_centre(~free, g.dx) if free.any() else 0.0
+    x_cut = g.x0 + cut
+    window = geo.rectangle(x_cut, z_lo, x_cut + P, z_hi) * 1e9
+    polys = [np.asarray(q.vertices_m) * 1e9 for q in family.polygons(p, spec.context, lay)]
+    pieces = []
+    for shift in (-P, 0.0, P):
+        moved = [q + np.array([shift * 1e9, 0.0]) for q in polys]
+        pieces += [np.asarray(x.points) * 1e-9 for x in
+                   gdstk.boolean(moved, [window], "and", precision=1e-4)]
+    pieces = geo.union(pieces)
+    x_first = -0.5 * n * P
+    keep = geo.union([q + np.array([x_first - x_cut + k * P, 0.0])
+                      for k in range(n) for q in pieces])
+    frame = geo.grow((x_first, z_lo, -x_first, z_hi), settings.margin_m)
+    free_text = " with a free-form pattern" if getattr(p, "freeform", None) is not None else ""
+    kind = (f"wafer-plane {'two' if p.sides == 2 else 'one'}-row structure{free_text}, "
+            f"{n} periods, etched through {p.plane.device_layer_m * 1e9:.4g} nm")
+    return geo.TopView(tuple(keep), frame, kind, path_y_m=lay.path.z_m,
+                       origin_m=(x_first - x_cut, 0.0))
 
 
 # ---------------------------------------------------------------------------------
@@ -335,9 +445,13 @@ def decoration_polygons(view: geo.TopView, s: LayoutSettings) -> dict[str, list[
 
 
 def build_drawing(view: geo.TopView, s: LayoutSettings, material: str) -> Drawing:
-    pattern = list(view.keep) if s.tone == "keep" else geo.complement(view)
-    shapes = [("pattern",) + s.layer_of("pattern", material)
-              + (tuple(geo.snap(pattern, s.dbu_m)),)]
+    """The pattern (one layer per lithography level: ``layer``, ``layer + 1``, ...) and
+    the decorations, snapped to the database unit."""
+    shapes = []
+    layer, datatype = s.layer_of("pattern", material)
+    for j, v in enumerate(view.level_views()):
+        pattern = list(v.keep) if s.tone == "keep" else geo.complement(v)
+        shapes.append(("pattern", layer + j, datatype, tuple(geo.snap(pattern, s.dbu_m))))
     for purpose, polys in decoration_polygons(view, s).items():
         shapes.append((purpose,) + s.layer_of(purpose) + (tuple(geo.snap(polys, s.dbu_m)),))
     return Drawing(tuple(shapes), (view.frame[0], view.frame[1]), s.layer_of("info"))
@@ -346,84 +460,34 @@ def build_drawing(view: geo.TopView, s: LayoutSettings, material: str) -> Drawin
 # ---------------------------------------------------------------------------------
 # design-rule check
 # ---------------------------------------------------------------------------------
-@dataclass(frozen=True)
-class Finding:
-    """One rule violation, in the cross-section (x, z) or in the layout (x, y)."""
+def rule_check(spec, view: geo.TopView | None = None, s: LayoutSettings | None = None
+               ) -> list[Finding]:
+    """Every violation of ``spec.fabrication`` by the sample and its top view: the one
+    check every command reports (designer.fabrication.check_design)."""
+    from designer.fabrication import check_design
 
-    plane: str                 # "cross-section" | "layout"
-    rule: str
-    measured_m: float
-    limit_m: float
-    location_m: tuple[float, float]
-    description: str
-
-    @property
-    def message(self) -> str:
-        x, v = self.location_m
-        if self.plane == "cross-section" or not math.isfinite(self.measured_m):
-            return f"{self.plane}: {self._cross_message()}"
-        where = f"at x = {x * 1e6:.4f} um, y = {v * 1e6:.4f} um"
-        relation = "above the maximum" if self.measured_m > self.limit_m else "below the minimum"
-        return (f"layout: {self.rule}: {self.description} {where} measures "
-                f"{self.measured_m * 1e9:.1f} nm, {relation} {self.limit_m * 1e9:.1f} nm")
-
-    def _cross_message(self) -> str:
-        from designer.fabrication import Violation
-
-        return Violation(self.rule, self.measured_m, self.limit_m, self.location_m,
-                         self.description).message
-
-    def to_dict(self) -> dict:
-        return {"plane": self.plane, "rule": self.rule, "measured_m": self.measured_m,
-                "limit_m": self.limit_m, "location_m": list(self.location_m),
-                "description": self.description, "message": self.message}
-
-
-def rule_check(spec, view: geo.TopView, s: LayoutSettings) -> list[Finding]:
-    """Every violation of ``spec.fabrication`` by the sample and its top view."""
-    from designer.fabrication import check_materials, design_rule_check
-    from designer.families import get_family
-
-    rules = spec.fabrication
-    family = get_family(spec.family)
-    out = [Finding("cross-section", v.rule, v.measured_m, v.limit_m, v.location, v.description)
-           for v in design_rule_check(family.features(spec.sample), rules)]
-    out += [Finding("cross-section", v.rule, v.measured_m, v.limit_m, v.location,
-                    v.description) for v in check_materials([spec.sample.material.name], rules)]
-    if getattr(spec.sample, "freeform", None) is not None:
-        out += freeform_findings(spec)
-    out += layout_rule_check(view, s, rules)
-    return out
-
-
-def freeform_findings(spec) -> list[Finding]:
-    """Opening/closing check of the binarized free-form pixels (cross-section)."""
-    from designer.fabrication import pattern_rule_check
-    from designer.families import region
-
-    lay, cells, solid = freeform_pattern(spec)
-    g = lay.grid
-    origin = region.pixel_origin(spec.sample.freeform, lay)
-    return [Finding("cross-section", v.rule, v.measured_m, v.limit_m, v.location, v.description)
-            for v in pattern_rule_check(solid, g.dx, g.dz, spec.fabrication, origin=origin,
-                                        periodic_x=cells.periodic_x)]
+    return list(check_design(spec).findings)
 
 
 def layout_rule_check(view: geo.TopView, s: LayoutSettings, rules) -> list[Finding]:
     """Width/space of the physical material for the tone, write field, decorations."""
     out = []
-    for rule, find, limit, word in (("min_feature", geo.thin_material, rules.min_feature_m,
-                                     "material"),
-                                    ("min_gap", geo.thin_openings, rules.min_gap_m, "opening")):
-        for part in find(view, s.tone, limit):
-            out.append(Finding("layout", rule, part.size_m, limit, part.center_m,
-                               f"{word} of {part.area_m2 * 1e12:.4g} um^2"))
+    views = view.level_views()
+    for j, v in enumerate(views):
+        level = f" (level {j + 1} of {len(views)})" if len(views) > 1 else ""
+        for rule, find, limit, word in (("min_feature", geo.thin_material,
+                                         rules.min_feature_m, "material"),
+                                        ("min_gap", geo.thin_openings, rules.min_gap_m,
+                                         "opening")):
+            for part in find(v, s.tone, limit):
+                out.append(Finding("layout", rule, part.size_m, limit, part.center_m,
+                                   f"{word}{level} of {part.area_m2 * 1e12:.4g} µm²"))
     x0, y0, x1, y1 = view.frame
     extent = max(x1 - x0, y1 - y0)
     if extent > rules.write_field_m * (1 + 1e-9):
         out.append(Finding("layout", "write_field", extent, rules.write_field_m,
                            (0.5 * (x0 + x1), 0.5 * (y0 + y1)),
-                           f"pattern frame {(x1 - x0) * 1e6:.4g} x {(y1 - y0) * 1e6:.4g} um "
+                           f"pattern frame {(x1 - x0) * 1e6:.4g} x {(y1 - y0) * 1e6:.4g} µm "
                            "(larger than one write field: stitching)"))
     decorated = s.frame or s.marks or bool(s.label)
     if decorated and rules.min_gap_m > 0 and s.clearance_m < rules.min_gap_m * (1 - 1e-9):
@@ -512,7 +576,7 @@ def write_preview(path: str | os.PathLike, drawing: Drawing, view: geo.TopView,
     from matplotlib.collections import PolyCollection
 
     fig, ax = plt.subplots(figsize=(7, 5))
-    colours = {"pattern": "#2f6fb0", "frame": "#777777", "marks": "#b05a2f", "label": "#444444"}
+    colours = {"pattern": "#5b6f82", "frame": "#9aa5b0", "marks": "#8a7a5a", "label": "#444444"}
     for purpose, layer, datatype, polys in drawing.shapes:
         if polys:
             ax.add_collection(PolyCollection([p * 1e6 for p in polys], closed=True,
@@ -521,20 +585,22 @@ def write_preview(path: str | os.PathLike, drawing: Drawing, view: geo.TopView,
     x0, y0, x1, y1 = (v * 1e6 for v in view.frame)
     ax.plot([x0, x1, x1, x0, x0], [y0, y0, y1, y1, y0], ls=":", lw=0.8, color="k",
             label="pattern frame")
+    from designer.drawing import ELECTRON
+
     if view.crossing_x_m is None:
         ax.annotate("", xy=(x1, view.path_y_m * 1e6), xytext=(x0, view.path_y_m * 1e6),
-                    arrowprops=dict(arrowstyle="->", color="#c0392b", lw=1.2))
-        ax.plot([], [], color="#c0392b", label="electron path")
+                    arrowprops=dict(arrowstyle="-|>", color=ELECTRON, lw=2.0))
+        ax.plot([], [], color=ELECTRON, lw=2.0, label="electron path")
     else:
-        ax.plot([view.crossing_x_m * 1e6], [0.0], marker="o", ms=6, mfc="none",
-                color="#c0392b", ls="none", label="electron crosses the film")
+        ax.plot([view.crossing_x_m * 1e6], [0.0], marker="o", ms=7, mfc="none", mew=2.0,
+                color=ELECTRON, ls="none", label="electron crosses the film")
     bx = geo.bounding_box(drawing.polygons() + [geo.rectangle(*view.frame)])
     pad = 0.05 * max(bx[2] - bx[0], bx[3] - bx[1]) * 1e6
     ax.set_xlim(bx[0] * 1e6 - pad, bx[2] * 1e6 + pad)
     ax.set_ylim(bx[1] * 1e6 - pad, bx[3] * 1e6 + pad)
     ax.set_aspect("equal")
-    ax.set_xlabel("x (um)")
-    ax.set_ylabel("y (um)")
+    ax.set_xlabel("x (µm)")
+    ax.set_ylabel("y (µm)")
     ax.set_title(f"{view.kind}; tone '{s.tone}'", fontsize=10)
     ax.legend(loc="upper left", bbox_to_anchor=(1.02, 1.0), fontsize=7, framealpha=0.85)
     return vio.save_figure(fig, path)
@@ -552,6 +618,10 @@ def summary(drawing: Drawing, view: geo.TopView, s: LayoutSettings, findings, *,
         "file": file, "format": fmt, "written": written, "rules_ignored": ignored,
         "sample": view.kind, "tone": s.tone,
         "layer": [[x[1], x[2]] for x in drawing.shapes if x[0] == "pattern"][0],
+        "pattern_layers": [{"layer": [x[1], x[2]], "polygons": len(x[3]),
+                            "area_m2": float(sum(geo.polygon_area(q) for q in x[3]))}
+                           for x in drawing.shapes if x[0] == "pattern"],
+        "origin_m": list(view.origin_m) if view.origin_m is not None else None,
         "polygons": len(pattern), "polygons_total": len(every),
         "area_m2": float(sum(geo.polygon_area(p) for p in pattern)),
         "bbox_m": list(geo.bounding_box(pattern)) if pattern else None,
@@ -595,11 +665,11 @@ def _text_report(summ: dict, findings) -> str:
         lines.append(f"wrote {summ['file']} ({word}): {summ['sample']}, tone "
                      f"'{summ['tone']}'")
     lines.append(f"  pattern: {summ['polygons']} polygons on layer "
-                 f"{summ['layer'][0]}/{summ['layer'][1]}, area {summ['area_m2'] * 1e12:.6g} um^2")
+                 f"{summ['layer'][0]}/{summ['layer'][1]}, area {summ['area_m2'] * 1e12:.6g} µm²")
     if summ["bbox_m"]:
         b = [v * 1e6 for v in summ["bbox_m"]]
-        lines.append(f"  bounding box: x {b[0]:.4f} .. {b[2]:.4f} um, y {b[1]:.4f} .. "
-                     f"{b[3]:.4f} um")
+        lines.append(f"  bounding box: x {b[0]:.4f} .. {b[2]:.4f} µm, y {b[1]:.4f} .. "
+                     f"{b[3]:.4f} µm")
     if findings:
         lines.append(f"  {len(findings)} design-rule violation(s), ignored (--ignore-rules)")
         lines += ["    " + f.message for f in findings[:_TEXT_LIMIT]]
@@ -625,17 +695,28 @@ def export_command(args) -> int:
     ignore = bool(getattr(args, "ignore_rules", False))
     _check_outputs(out, preview, overwrite)
     spec = load_spec(args.spec)
+    from designer.fabrication import check_design
+
     material = spec.sample.material.name
-    settings = parse_layout(spec.layout, spec.source, materials=(material,))
-    view = top_view(spec, settings)
-    drawing = build_drawing(view, settings, material)
-    findings = rule_check(spec, view, settings)
+    materials = tuple(dict.fromkeys(
+        [material] + ([spec.sample.freeform.material.name]
+                      if getattr(spec.sample, "freeform", None) is not None else [])))
+    settings = parse_layout(spec.layout, spec.source, materials=materials)
+    verdict = check_design(spec)
+    findings = list(verdict.findings)
     items = provenance_items(spec.sha256, Path(spec.source).name)
     as_json = bool(getattr(args, "json", False))
     if findings and not ignore:
-        summ = summary(drawing, view, settings, findings, file=None, fmt=fmt, written=False,
-                       ignored=False, preview=None, items=items)
+        try:
+            view = top_view(spec, settings)
+            drawing = build_drawing(view, settings, material)
+        except SpecError:
+            view = drawing = None         # the violations say why it cannot be drawn
         if as_json:
+            summ = summary(drawing, view, settings, findings, file=None, fmt=fmt,
+                           written=False, ignored=False, preview=None, items=items) \
+                if drawing is not None else {"written": False, "violations":
+                                             [f.to_dict() for f in findings]}
             print(vio.dumps(summ))
         for f in findings[:_TEXT_LIMIT]:
             print("velomatch export: " + f.message, file=sys.stderr)
@@ -644,6 +725,8 @@ def export_command(args) -> int:
                   "(see --json)", file=sys.stderr)
         raise DesignRuleError(f"{len(findings)} design-rule violation(s); nothing written "
                               "(pass --ignore-rules to write anyway)")
+    view = top_view(spec, settings)
+    drawing = build_drawing(view, settings, material)
     write_layout(out, drawing, settings, items, fmt)
     if preview is not None:
         write_preview(preview, drawing, view, settings)

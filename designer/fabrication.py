@@ -580,3 +580,245 @@ def smallest_features(solid: np.ndarray, dx: float, dz: float, diameters_m: Sequ
             best = d
         result.append(best)
     return result[0], result[1]
+
+
+# ---------------------------------------------------------------------------------
+# one rule check for every command
+# ---------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class Finding:
+    """One rule violation, located in the sample's plane or in the layout (x, y).
+
+    plane: ``"cross-section"`` (x along the surface, z depth), ``"wafer plane"`` (the
+    simulated plane is the chip surface) or ``"layout"`` (the drawn top view).
+    """
+
+    plane: str
+    rule: str
+    measured_m: float
+    limit_m: float
+    location_m: tuple[float, float]
+    description: str
+
+    @property
+    def message(self) -> str:
+        x, v = self.location_m
+        if not math.isfinite(self.measured_m):
+            return f"{self.plane}: {self.rule}: {self.description}"
+        if self.plane != "layout":
+            return f"{self.plane}: " + Violation(self.rule, self.measured_m, self.limit_m,
+                                                 self.location_m, self.description).message
+        where = f"at x = {x * 1e6:.4f} µm, y = {v * 1e6:.4f} µm"
+        relation = "above the maximum" if self.measured_m > self.limit_m else "below the minimum"
+        return (f"layout: {self.rule}: {self.description} {where} measures "
+                f"{self.measured_m * 1e9:.1f} nm, {relation} {self.limit_m * 1e9:.1f} nm")
+
+    def to_dict(self) -> dict:
+        return {"plane": self.plane, "rule": self.rule, "measured_m": self.measured_m,
+                "limit_m": self.limit_m, "location_m": list(self.location_m),
+                "description": self.description, "message": self.message}
+
+
+@dataclass(frozen=True)
+class RuleVerdict:
+    """What :func:`check_design` found: ``findings`` (empty = can be made as it is) and
+    ``not_checked`` (parts of the check that could not run, with the reason)."""
+
+    findings: tuple[Finding, ...]
+    not_checked: tuple[str, ...] = ()
+
+    @property
+    def clean(self) -> bool:
+        return not self.findings
+
+    @property
+    def messages(self) -> list[str]:
+        return [f.message for f in self.findings]
+
+    def summary_line(self) -> str:
+        head = "clean" if self.clean else f"{len(self.findings)} violation(s)"
+        if self.not_checked:
+            head += " (not checked: " + "; ".join(self.not_checked) + ")"
+        return head
+
+    def to_dict(self) -> dict:
+        return {"clean": self.clean, "violations": [f.to_dict() for f in self.findings],
+                "not_checked": list(self.not_checked)}
+
+
+def _from_violation(plane: str, v: Violation) -> Finding:
+    return Finding(plane, v.rule, v.measured_m, v.limit_m, v.location, v.description)
+
+
+def column_run_violations(columns: np.ndarray, dx: float, x0: float, z: float,
+                          rules: FabricationRules, *, periodic: bool, what: str
+                          ) -> list[Violation]:
+    """Solid runs narrower than ``min_feature`` and void runs narrower than ``min_gap`` in
+    one row of pixel columns (the lines and spaces one lithography level draws).
+
+    Widths are whole pixels, compared with the limits exactly (sizes equal to a limit
+    pass).  Without ``periodic`` the runs touching either end continue outside the row
+    and are not measured.
+    """
+    cols = np.asarray(columns, dtype=bool)
+    n = cols.size
+    out = []
+    if cols.all() or not cols.any():
+        return out
+    start = int(np.nonzero(cols != cols[0])[0][0]) if periodic else 0
+    rolled = np.roll(cols, -start)
+    edges = np.nonzero(np.diff(rolled.astype(np.int8)))[0] + 1
+    bounds = np.concatenate([[0], edges, [n]])
+    for a, b in zip(bounds, bounds[1:]):
+        if not periodic and (a == 0 or b == n):
+            continue
+        solid = bool(rolled[a])
+        rule, limit = ("min_feature", rules.min_feature_m) if solid else \
+            ("min_gap", rules.min_gap_m)
+        width = (b - a) * dx
+        if limit > 0 and _below(width, limit):
+            centre = x0 + ((start + 0.5 * (a + b)) % n) * dx
+            out.append(Violation(rule, width, limit, (centre, z),
+                                 f"{what}: {'line' if solid else 'space'} of {b - a} pixel "
+                                 "columns"))
+    return out
+
+
+def freeform_findings(spec, params, grid_step_m: float | None = None) -> list[Finding]:
+    """Can the sample's free-form pattern be made as it is?
+
+    Cross-section plane: in each etch step (slab) every pixel column must be solid or
+    void all through the slab (rule ``etch``), and the slab's lines and spaces must meet
+    ``min_feature`` / ``min_gap`` (:func:`column_run_violations`); a drawn layout needs
+    the region to span the whole period (rule ``region``).  Wafer plane: the pattern is
+    the top view; its solid and void parts are checked by opening and closing
+    (:func:`pattern_rule_check`).
+    """
+    from designer.evaluate import default_grid_step
+    from designer.families import get_family, region
+
+    fr = params.freeform
+    family = get_family(spec.family)
+    h = grid_step_m or spec.solver.grid_step_m or default_grid_step(spec)
+    lay = family.layout(params, spec.context, h)
+    g = lay.grid
+    pattern = np.asarray(family.freeform_density(params, lay)) > 0.5
+    blocks = region.split(fr, lay, pattern)
+    out: list[Finding] = []
+    names = ["region", "upper region"]
+    if fr.plane == "wafer":
+        for name, cells, block in zip(names, region.parts(fr, lay), blocks):
+            for v in pattern_rule_check(block, g.dx, g.dz, spec.fabrication,
+                                        origin=region.part_origin(cells, lay),
+                                        periodic_x=cells.periodic_x):
+                out.append(_from_violation("wafer plane", v))
+        return out
+    for name, cells, block in zip(names, region.parts(fr, lay), blocks):
+        x0, z0 = region.part_origin(cells, lay)
+        for j, (a, b) in enumerate(region.slab_rows(fr, lay)):
+            slab = block[:, a:b]
+            step = f"free-form {name}, etch step {j + 1} of {fr.etch_steps}"
+            z_mid = z0 + 0.5 * (a + b) * g.dz
+            mixed = np.nonzero(slab.any(axis=1) & ~slab.all(axis=1))[0]
+            if mixed.size:
+                x = x0 + (mixed[0] + 0.5) * g.dx
+                out.append(Finding(
+                    "cross-section", "etch", math.nan, math.nan, (x, z_mid),
+                    f"{step}: {mixed.size} pixel column(s), the first at x = "
+                    f"{x * 1e9:.1f} nm, change material within the step (one etch makes "
+                    "columns solid or void all through it)"))
+                continue
+            for v in column_run_violations(slab[:, 0], g.dx, x0, z_mid, spec.fabrication,
+                                           periodic=cells.periodic_x, what=step):
+                out.append(_from_violation("cross-section", v))
+        if not cells.periodic_x:
+            out.append(Finding(
+                "cross-section", "region", math.nan, math.nan, (x0, z0),
+                f"free-form {name} covers x = {fr.x_m[0] * 1e9:.4g} .. "
+                f"{fr.x_m[1] * 1e9:.4g} nm of the period; a cross-section pattern is "
+                "drawn as lines only when the region spans the whole period"))
+    return out
+
+
+def _outside_region(features, fr) -> list[Feature]:
+    """The family's sizes that a free-form region leaves standing: solids and gaps
+    inside the region are the pattern's (checked pixel by pixel); heights keep their
+    etch-depth rule but lose the aspect ratio of a tooth that is no longer there."""
+    boxes = [(fr.x_m, fr.z_m)]
+    if fr.upper is not None:
+        boxes.append((fr.x_m, (fr.mirror_z_m - fr.z_m[1], fr.mirror_z_m - fr.z_m[0])))
+    tol = 1e-12
+
+    def inside(loc):
+        return any(x[0] - tol <= loc[0] <= x[1] + tol and z[0] - tol <= loc[1] <= z[1] + tol
+                   for x, z in boxes)
+
+    out = []
+    for f in features:
+        if f.kind in ("solid", "gap") and inside(f.location):
+            continue
+        if f.kind == "height" and inside(f.location):
+            f = Feature("height", f.size_m, f.location, f.description)
+        out.append(f)
+    return out
+
+
+def check_design(spec, params=None, *, grid_step_m: float | None = None,
+                 layout: bool = True) -> RuleVerdict:
+    """The design-rule verdict of a sample: the one check that ``design``, ``evaluate``,
+    ``compare`` and ``export`` all report.
+
+    ``params``: the family parameters to check (default ``spec.sample``);
+    ``grid_step_m``: the grid a free-form pattern lives on (default: the spec's).
+    Checks: the family's sizes (:func:`design_rule_check`, read in the sample's plane),
+    the allowed materials, a free-form pattern (:func:`freeform_findings`) and, with
+    ``layout``, the top view that ``export`` would draw from the spec's ``[layout]``
+    table (designer.export.layout_rule_check: width and space of the drawn material
+    for the tone, write field, decorations).
+    """
+    import dataclasses
+
+    from designer.errors import SpecError
+    from designer.families import get_family
+
+    p = spec.sample if params is None else params
+    family = get_family(spec.family)
+    rules = spec.fabrication
+    plane_info = getattr(p, "plane", None)
+    where = "wafer plane" if plane_info is not None and plane_info.plane == "wafer" \
+        else "cross-section"
+    fr = getattr(p, "freeform", None)
+    features = family.features(p)
+    if fr is not None:
+        features = _outside_region(features, fr)
+    out = [_from_violation(where, v) for v in design_rule_check(features, rules)]
+    names = [p.material.name]
+    if fr is not None:
+        names.append(fr.material.name)
+    out += [_from_violation(where, v) for v in check_materials(names, rules)]
+    skipped = []
+    blocking = False
+    if fr is not None:
+        found = freeform_findings(spec, p, grid_step_m)
+        blocking = any(f.rule in ("etch", "region") for f in found)
+        out += found
+    if layout:
+        if blocking:
+            skipped.append("layout: the free-form pattern cannot be drawn as it is")
+        else:
+            from designer import export
+
+            sp = dataclasses.replace(spec, sample=p)
+            if grid_step_m is not None:
+                sp = dataclasses.replace(sp, solver=dataclasses.replace(
+                    spec.solver, grid_step_m=grid_step_m))
+            try:
+                settings = export.parse_layout(spec.layout, spec.source,
+                                               materials=tuple(dict.fromkeys(names)))
+                view = export.top_view(sp, settings)
+            except SpecError as exc:
+                skipped.append(f"layout: {exc.key}: {exc.message}" if hasattr(exc, "message")
+                               else f"layout: {exc}")
+            else:
+                out += export.layout_rule_check(view, settings, rules)
+    return RuleVerdict(tuple(out), tuple(skipped))

@@ -350,3 +350,115 @@ def grayness(rho_bar: jnp.ndarray) -> jnp.ndarray:
 def binarize(rho_bar, threshold: float = 0.5) -> np.ndarray:
     """Boolean solid mask ``rho_bar > threshold`` (for the pixel design-rule check)."""
     return np.asarray(rho_bar) > threshold
+
+
+# ---------------------------------------------------------------------------------
+# parametrizations: design variables -> region pattern
+# ---------------------------------------------------------------------------------
+UPPER_MODES = ("independent", "mirrored", "shifted")
+
+
+def slab_counts(rows: int, slabs: int) -> tuple[int, ...]:
+    """Rows per slab when ``rows`` grid rows are split into ``slabs`` stacked slabs
+    (bottom first; nearly equal, the lower slabs one row larger when it does not divide).
+    """
+    if not 1 <= slabs <= rows:
+        raise ValueError(f"cannot split {rows} grid rows into {slabs} etch steps "
+                         "(each step needs at least one grid row)")
+    return tuple(len(a) for a in np.array_split(np.arange(rows), slabs))
+
+
+@dataclass(frozen=True)
+class Parametrization:
+    """How the design variables become the region's pattern (``shape``).
+
+    The pattern is ``(nx, rows)`` cells of one region, or ``(nx, 2 rows)`` when a
+    second region (the upper side of a two-sided structure) follows it along axis 1.
+
+    * ``slabs = None``: one variable per cell (a 2D density; wafer-plane top views);
+    * ``slabs = k``: the region is k stacked slabs and each slab has one variable per
+      pixel column, extruded through the slab's rows (vertical sidewalls: what one
+      lithography and etch step per slab makes).  The filter then acts along x only.
+    * ``upper``: ``None`` (one region); ``"independent"`` (the upper region has its own
+      variables); ``"mirrored"`` (the upper region is the lower one mirrored in z:
+      ``pattern_upper[:, k] = pattern_lower[:, rows - 1 - k]``); ``"shifted"``
+      (mirrored, then rolled by ``roll`` cells along x, periodic).
+
+    Every map is linear and JAX-traceable, so gradients reach the variables.
+    """
+
+    nx: int
+    rows: int
+    slabs: int | None = None
+    upper: str | None = None
+    roll: int = 0
+
+    def __post_init__(self):
+        if self.slabs is not None:
+            slab_counts(self.rows, self.slabs)
+        if self.upper is not None and self.upper not in UPPER_MODES:
+            raise ValueError(f"upper must be one of {UPPER_MODES} or None, got {self.upper!r}")
+
+    @property
+    def raw_rows(self) -> int:
+        return self.slabs or self.rows
+
+    @property
+    def raw_shape(self) -> tuple[int, int]:
+        """Shape of the design variables."""
+        return (self.nx, self.raw_rows * (2 if self.upper == "independent" else 1))
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        """Shape of the region pattern (region cells)."""
+        return (self.nx, self.rows * (2 if self.upper else 1))
+
+    def _raw_parts(self, raw):
+        n = self.raw_rows
+        return [raw[:, :n]] + ([raw[:, n:2 * n]] if self.upper == "independent" else [])
+
+    def filter(self, raw, radius_m: float, dx: float, dz: float, *, periodic_x: bool):
+        """:func:`density_filter` of each part (along x only for slabs)."""
+        if self.slabs is not None:
+            dz = 4.0 * radius_m + dx          # one kernel row: no smoothing across slabs
+        parts = [density_filter(p, radius_m, dx, dz, periodic_x=periodic_x)
+                 for p in self._raw_parts(jnp.asarray(raw, dtype=float))]
+        return jnp.concatenate(parts, axis=1) if len(parts) > 1 else parts[0]
+
+    def _extrude(self, part):
+        if self.slabs is None:
+            return part
+        counts = np.asarray(slab_counts(self.rows, self.slabs))
+        return jnp.repeat(part, counts, axis=1, total_repeat_length=self.rows)
+
+    def expand(self, raw):
+        """Design variables (``raw_shape``) -> region pattern (``shape``)."""
+        raw = jnp.asarray(raw)
+        parts = [self._extrude(p) for p in self._raw_parts(raw)]
+        lower = parts[0]
+        if self.upper is None:
+            return lower
+        if self.upper == "independent":
+            upper = parts[1]
+        else:
+            upper = jnp.flip(lower, axis=1)
+            if self.upper == "shifted":
+                upper = jnp.roll(upper, self.roll, axis=0)
+        return jnp.concatenate([lower, upper], axis=1)
+
+    def reduce(self, pattern) -> np.ndarray:
+        """A region pattern -> the design variables that come closest (slab means;
+        the lower region for mirrored/shifted uppers): the start of a design."""
+        pattern = np.asarray(pattern, dtype=float)
+        parts = [pattern[:, :self.rows]]
+        if self.upper == "independent":
+            parts.append(pattern[:, self.rows:2 * self.rows])
+        out = []
+        for p in parts:
+            if self.slabs is None:
+                out.append(p)
+                continue
+            edges = np.cumsum((0,) + slab_counts(self.rows, self.slabs))
+            out.append(np.stack([p[:, a:b].mean(axis=1) for a, b in zip(edges, edges[1:])],
+                                axis=1))
+        return np.concatenate(out, axis=1)

@@ -74,6 +74,18 @@ class TopView:
     path_y_m: float = 0.0
     widths_m: tuple[tuple[str, float], ...] = ()
     crossing_x_m: float | None = None   # membranes: the electron crosses the film here
+    levels: tuple[tuple[np.ndarray, ...], ...] = ()   # multi-level: kept polygons per
+                                                      # lithography level (level 0 first)
+    origin_m: tuple[float, float] | None = None   # wafer plane: where the simulated
+                                                  # (x, z) = (0, 0) of one period lands
+
+    def level_views(self) -> list["TopView"]:
+        """One view per lithography level (the view itself when it has one level)."""
+        if not self.levels:
+            return [self]
+        from dataclasses import replace
+
+        return [replace(self, keep=tuple(k), levels=()) for k in self.levels]
 
 
 def rectangle(x0: float, y0: float, x1: float, y1: float) -> np.ndarray:
@@ -158,7 +170,7 @@ def slit_intervals(params, field_x_m: float) -> list[tuple[float, float]]:
     P = params.period_m
     n = int(math.floor(field_x_m / P * (1 + 1e-12)))
     if n < 1:
-        raise LayoutError(f"the field ({field_x_m * 1e6:.6g} um) is narrower than one "
+        raise LayoutError(f"the field ({field_x_m * 1e6:.6g} µm) is narrower than one "
                           f"period ({P * 1e9:.6g} nm)")
     x0 = -0.5 * n * P
     lim = 0.5 * field_x_m * (1 + 1e-12)
@@ -192,7 +204,7 @@ def membrane_top_view(params, field_m: tuple[float, float], *, margin_m: float =
     # the cross-section's x in the period nearest the field centre
     crossing = -0.5 * n * P + (n // 2) * P + electron_x_m % P
     return TopView(tuple(keep), grow(frame, margin_m),
-                   f"membrane, {len(slits)} slits over a {fx * 1e6:.6g} um field",
+                   f"membrane, {len(slits)} slits over a {fx * 1e6:.6g} µm field",
                    widths_m=widths, crossing_x_m=crossing)
 
 
@@ -237,6 +249,15 @@ def region_lines(solid: np.ndarray, dx_m: float, x0_m: float,
     return trace_pixels(solid[:, :1], (dx_m, line_length_m), (x0_m, -0.5 * line_length_m))
 
 
+def widest_void_centre(columns: np.ndarray, pitch_m: float) -> float:
+    """x (from the row's start) of the centre of the widest void run of a periodic row
+    of pixel columns (0 when the row has no void or no solid)."""
+    cols = np.asarray(columns, dtype=bool)
+    if cols.all() or not cols.any():
+        return 0.0
+    return column_runs(cols, pitch_m)[1]
+
+
 def column_runs(columns: np.ndarray, pitch_m: float) -> tuple[list[tuple[float, float]], float]:
     """Solid runs of one periodic row of pixel columns as x intervals (m), and the
     cell start ``c``: the runs are given in ``[c, c + n pitch)`` with ``c`` at the centre
@@ -265,6 +286,24 @@ def column_runs(columns: np.ndarray, pitch_m: float) -> tuple[list[tuple[float, 
         xa = ((start + a) * pitch_m - centre) % (n * pitch_m) + centre
         runs.append((xa, xa + (b - a) * pitch_m))
     return sorted(runs), centre
+
+
+def periodic_lines(columns: np.ndarray, pitch_m: float, n_periods: int, cut_m: float,
+                   y_range: tuple[float, float], x_shift_m: float = 0.0) -> list[np.ndarray]:
+    """Lines of a periodic row of pixel columns, repeated ``n_periods`` times from
+    ``x = -n P / 2``, the period window starting at ``cut`` (m from the row's start; the
+    row's x = cut lands on x = -n P / 2), each line spanning ``y_range``."""
+    cols = np.asarray(columns, dtype=bool)
+    n = cols.size
+    P = n * pitch_m
+    x_first = -0.5 * n_periods * P
+    out = []
+    for i in np.nonzero(cols)[0]:
+        x = ((i * pitch_m - cut_m) % P)
+        for k in range(n_periods):
+            out.append(rectangle(x_first + k * P + x + x_shift_m, y_range[0],
+                                 x_first + k * P + x + pitch_m + x_shift_m, y_range[1]))
+    return union(out) if out else []
 
 
 def freeform_lines_top_view(columns: np.ndarray, pitch_m: float, n_periods: int,

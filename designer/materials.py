@@ -32,7 +32,6 @@ from typing import Any
 
 import numpy as np
 from scipy import constants as const
-from scipy.interpolate import PchipInterpolator
 
 _DATA_DIR = Path(__file__).resolve().parent / "data"
 _UM = 1e-6
@@ -201,6 +200,8 @@ class Tabulated:
         lam_c = np.clip(lam, x[0], x[-1])
         if self.interpolation == "linear" or x.size == 2:
             return np.interp(lam_c, x, y)
+        from scipy.interpolate import PchipInterpolator   # only tables need it (start-up)
+
         return PchipInterpolator(x, y)(lam_c)
 
     def eps(self, lam):
@@ -313,11 +314,11 @@ def _build_catalogue() -> dict[str, Material]:
         Material(
             "silicon",
             Spliced((1.2 * _UM,), (_silicon_table(), li_silicon)),
-            "below 1.2 um: table from memory of M. A. Green, Sol. Energy Mater. Sol. Cells "
-            "92, 1305 (2008) (approximate); from 1.2 um: H. H. Li, J. Phys. Chem. Ref. Data "
+            "below 1.2 µm: table from memory of M. A. Green, Sol. Energy Mater. Sol. Cells "
+            "92, 1305 (2008) (approximate); from 1.2 µm: H. H. Li, J. Phys. Chem. Ref. Data "
             "9, 561 (1980)",
             (0.4 * _UM, 14.0 * _UM),
-            note="absorbing below about 1.1 um (indirect gap); the table values are "
+            note="absorbing below about 1.1 µm (indirect gap); the table values are "
                  "approximate (+-0.02 in n, +-20 % in k)"),
         Material(
             "sapphire",

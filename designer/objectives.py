@@ -18,8 +18,9 @@ each scales linearly with E0; README, Conventions):
 
 (``beta_c = e I / (2 hbar omega)``: F. J. Garcia de Abajo, A. Asenjo-Garcia,
 M. Kociak, Nano Lett. 10, 1859, 2010; G, kappa and the damage factor as defined in
-README, Conventions.)  L is the interaction length for paths along x and the
-structure's thickness for paths crossing it, as in designer.evaluate.
+README, Conventions.)  L is the interaction length for paths along x and, for paths
+crossing a film, its thickness plus one dephasing length on each side
+(designer.evaluate.open_path_length), as in designer.evaluate.
 
 Robust aggregates combine the figure over several scenarios: :func:`worst_case`
 (the minimum, to be maximized) or :func:`mean_case`.  Which scenarios exist is
@@ -328,7 +329,12 @@ def _fixed_values(family, params) -> dict:
 
 
 def _fdfd_model(scenario, nominal, keys, x0, bounds, grid_step_m, cache_size=2):
-    from designer.evaluate import angular_frequency, corner_exclusion_mask, fdfd_problem
+    from designer.evaluate import (
+        angular_frequency,
+        corner_exclusion_mask,
+        fdfd_problem,
+        open_path_length,
+    )
     from solvers import coupling
     from solvers.fdfd import e_magnitude_at_centres, field_solver
 
@@ -388,7 +394,7 @@ def _fdfd_model(scenario, nominal, keys, x0, bounds, grid_step_m, cache_size=2):
                 ez, hy, nx=grid.nx, dx=grid.dx, dz=grid.dz, x0=grid.x0, z0=grid.z0,
                 x=path.x_m, z1=z1, z2=z2, eps_below=path.eps_below,
                 eps_above=path.eps_above, omega=omega, bloch_kx=kb, velocity=v)[0]
-            length = geo[1]
+            length = open_path_length(spec, scenario.angle_rad, geo[1])
         mag = e_magnitude_at_centres(ex, ez, grid, bloch_kx=kb, periodic_x=periodic)
         e_max = jnp.max(jnp.where(mask, mag, 0.0))
         return Figures(integral=integral, e_max=e_max, length=length, omega=omega)
@@ -421,7 +427,7 @@ def _fdfd_model(scenario, nominal, keys, x0, bounds, grid_step_m, cache_size=2):
 
 
 def _layers_model(scenario, nominal, keys, x0):
-    from designer.evaluate import angular_frequency
+    from designer.evaluate import angular_frequency, open_path_length
     from solvers import layers
 
     spec = scenario.spec
@@ -457,7 +463,7 @@ def _layers_model(scenario, nominal, keys, x0):
                                       incidence=lay0.from_side)
         if path.direction == "z":
             integral = layers.coupling_normal(sol, path.x_m, v)
-            length = z_if[-1] - z_if[0]
+            length = open_path_length(spec, scenario.angle_rad, z_if[-1] - z_if[0])
         else:
             if path.length_m is None:
                 raise ValueError("a path along x needs an interaction length ([path] length_um)")
@@ -533,13 +539,22 @@ class DensityChain:
     periodic_x: bool
     radius_m: float | None = None
     delta_eta: float | None = None
+    # design variables -> region pattern (designer.freeform.Parametrization: column
+    # densities per etch step, mirrored upper regions); None: one variable per cell
+    param: object = None
 
     def filtered(self, rho):
         from designer import freeform as ff
 
         if self.radius_m is None:
             return jnp.asarray(rho, dtype=float)
+        if self.param is not None:
+            return self.param.filter(rho, self.radius_m, self.dx, self.dz,
+                                     periodic_x=self.periodic_x)
         return ff.density_filter(rho, self.radius_m, self.dx, self.dz, periodic_x=self.periodic_x)
+
+    def _expand(self, a):
+        return a if self.param is None else self.param.expand(a)
 
     def designs(self, rho, beta):
         """(1 or 3, nx, nz) projected designs (eroded, nominal, dilated when robust)."""
@@ -547,14 +562,14 @@ class DensityChain:
 
         rt = self.filtered(rho)
         if self.delta_eta is None:
-            return ff.threshold_projection(rt, beta)[None]
-        return ff.robust_triple(rt, beta, self.delta_eta)
+            return self._expand(ff.threshold_projection(rt, beta))[None]
+        return jnp.stack([self._expand(d) for d in ff.robust_triple(rt, beta, self.delta_eta)])
 
     def binarized(self, rho) -> np.ndarray:
         """The nominal design at ``beta = inf`` (0 or 1 per pixel): what is fabricated."""
         from designer import freeform as ff
 
-        return np.asarray(ff.threshold_projection(self.filtered(rho), math.inf))
+        return np.asarray(self._expand(ff.threshold_projection(self.filtered(rho), math.inf)))
 
 
 def _density_objective(models, objective, aggregate, n_keys, shape, designs_of):

@@ -131,6 +131,12 @@ def image(fig_or_png, caption: str = "", alt: str = "") -> Image:
     return Image(data, caption, alt or caption)
 
 
+def _fact_formatters():
+    from designer import units
+
+    return {"V/m": units.field, "m": units.length, "%": units.percent}
+
+
 COUPLING_FACTS = (
     ("beta_c", "PINEM coupling |β_c|", ""),
     ("beta_c_per_field_m_per_V", "|β_c| per incident field", "m/V"),
@@ -140,28 +146,46 @@ COUPLING_FACTS = (
     ("max_field_in_material_V_per_m", "largest field in material", "V/m"),
     ("damage_factor", "damage factor G/E_max", ""),
     ("interaction_length_m", "interaction length", "m"),
-    ("gradient_length_m", "length for the gradient", "m"),
-    ("relative_error_estimate", "relative error estimate", ""),
+    ("gradient_length_m", "length L for the gradient", "m"),
+    ("relative_error_estimate", "relative error estimate", "%"),
 )
 
 
 def evaluation_section(result: dict, title: str = "Coupling") -> Section:
-    """A section with the figures of one ``evaluate --json`` result."""
+    """A section with the figures of one ``evaluate --json`` result: the figures, the
+    set-up, the sample as evaluated (defaults made explicit), notes and cautions."""
+    from designer import units
+    from designer.resolved import sample_items
+
     c = result.get("coupling", {})
+    special = _fact_formatters()
     headline = Facts((("PINEM coupling |β_c|", fmt(c.get("beta_c"))),), headline=True)
-    items = [(label, fmt(c.get(key), unit)) for key, label, unit in COUPLING_FACTS
-             if key in c and key != "beta_c"]
+    items = [(label, special[unit](c.get(key)) if unit in special else fmt(c.get(key), unit))
+             for key, label, unit in COUPLING_FACTS if key in c and key != "beta_c"]
+    if "gradient_length_rule" in c:
+        items.append(("how L is chosen", str(c["gradient_length_rule"])))
     if "max_field_rule" in c:
         items.append(("rule for the largest field", str(c["max_field_rule"])))
     e, las = result.get("electron", {}), result.get("laser", {})
-    setup = [("beam voltage", fmt(e.get("voltage_V"), "V")), ("β = v/c", fmt(e.get("beta"), "", 6)),
-             ("laser wavelength", fmt(las.get("wavelength_m"), "m")),
-             ("angle of incidence", fmt(las.get("angle_deg"), "deg")),
-             ("incident peak field", fmt(las.get("peak_field_V_per_m"), "V/m"))]
-    if "sample" in result and "family" in result["sample"]:
-        setup.insert(0, ("sample family", str(result["sample"]["family"])))
-    return Section(title, (headline, Facts(tuple(items)), Paragraph("Set-up", "subhead"),
-                           Facts(tuple(setup))))
+    setup = [("beam voltage", units.voltage(e.get("voltage_V"))),
+             ("β = v/c", fmt(e.get("beta"), "", 6)),
+             ("laser wavelength", units.length(las.get("wavelength_m"))),
+             ("angle of incidence", units.degrees(las.get("angle_deg"))
+              + (f" (from {las['from']})" if las.get("from") else "")),
+             ("incident peak field", units.field(las.get("peak_field_V_per_m")))]
+    sample = result.get("sample", {})
+    if "family" in sample:
+        setup.insert(0, ("sample family", str(sample["family"])))
+    blocks = [headline, Facts(tuple(items)), Paragraph("Set-up", "subhead"),
+              Facts(tuple(setup))]
+    if len(sample) > 1:
+        blocks += [Paragraph("Sample as evaluated", "subhead"),
+                   Facts(tuple(sample_items(sample)))]
+    for note in result.get("notes", []):
+        blocks.append(Paragraph("Note: " + note, "note"))
+    for caution in result.get("cautions", []):
+        blocks.append(Paragraph(caution, "note"))
+    return Section(title, tuple(blocks))
 
 
 # -- rendering ---------------------------------------------------------------------
@@ -228,7 +252,7 @@ def _block_html(block: Block) -> str:
 
 def render_html(rep: Report) -> str:
     """The report as one HTML document (UTF-8, no external resources)."""
-    from designer.cli import SAFETY_NOTE
+    from designer.cautions import SAFETY_NOTE
 
     parts = ["<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
              '<meta name="viewport" content="width=device-width, initial-scale=1">',

@@ -138,28 +138,34 @@ def broadened_spectrum(lines: LineSpectrum, fwhm_eV, energy_eV=None, n_points=20
     return energy_eV, g @ lines.probability
 
 
-def plot_spectrum(path, energy_eV, density, lines: LineSpectrum | None = None, title=None):
-    """Write a PNG of the broadened spectrum (and the lines, scaled to the plot).
+def plot_spectrum(path, energy_eV, density, lines: LineSpectrum | None = None, title=None,
+                  notes=()):
+    """Write a picture of the broadened spectrum and its lines (PNG/SVG by suffix).
 
-    Uses matplotlib's Agg backend; returns the path written.
+    The lines are probabilities (dimensionless) drawn on the density axis (1/eV): they
+    are multiplied by one factor, stated in the legend, so that the tallest line meets
+    the tallest peak.  ``notes`` (e.g. "pulse averaging skipped") are printed in the
+    plot's top left corner.  Matplotlib's Agg backend, written atomically; returns the path.
     """
-    import matplotlib
+    from matplotlib.figure import Figure
 
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
+    from designer import drawing
+    from designer.io import save_figure
 
-    fig, ax = plt.subplots(figsize=(6.4, 3.6))
-    ax.plot(energy_eV, density, lw=1.4, label="broadened")
+    fig = Figure(figsize=(7.0, 4.2), layout="constrained")
+    ax = fig.subplots()
+    ax.plot(energy_eV, density, lw=1.6, color="0.15", label="spectrum (zero-loss broadened)")
     if lines is not None and np.max(density) > 0:
         scale = np.max(density) / max(np.max(lines.probability), 1e-300)
-        ax.vlines(lines.energy_eV, 0, lines.probability * scale, lw=0.8, alpha=0.6,
-                  color="0.3", label="lines (scaled)")
+        ax.vlines(lines.energy_eV, 0, lines.probability * scale, lw=1.0,
+                  color=drawing.ELECTRON,
+                  label=f"lines: probability × {scale:.3g} eV⁻¹")
     ax.set_xlabel("electron energy change (eV)")
     ax.set_ylabel("probability density (1/eV)")
     if title:
-        ax.set_title(title)
-    ax.legend(frameon=False)
-    fig.tight_layout()
-    fig.savefig(path, dpi=120)
-    plt.close(fig)
-    return path
+        ax.set_title(title, fontsize=10)
+    ax.legend(frameon=False, fontsize=8)
+    for j, note in enumerate(notes):
+        ax.text(0.01, 0.98 - 0.06 * j, note, fontsize=7, color="0.35", ha="left", va="top",
+                transform=ax.transAxes)
+    return save_figure(fig, path)

@@ -541,7 +541,8 @@ def run_sweep(plan: SweepPlan, out_dir: str | os.PathLike, *,
     if plot:
         guides = guide_orders(plan, values)
         data["guides"] = _guides_json(plan, guides)
-        files["plot"] = plot_sweep(data, out_dir / PLOT_FILE, guides=guides)
+        files["plot"] = plot_sweep(data, out_dir / PLOT_FILE, guides=guides,
+                                   decay_length_m=_decay_length(plan))
     vio.write_json(files["json"], data)
     failed = sum(1 for p in data["points"] if p.get("error"))
     return SweepResult(plan=plan, data=data, computed=len(todo), cached=n_cached,
@@ -574,9 +575,14 @@ def sweep_json(plan: SweepPlan, values: list[dict], shas: list[str],
         if rec.get("error") or not rec:
             entry["error"] = rec.get("error", "not evaluated")
         points.append(entry)
+    from designer.cautions import cautions
+
+    fields = [r["result"]["laser"]["peak_field_V_per_m"] for r in records.values()
+              if (r.get("result") or {}).get("laser", {}).get("peak_field_V_per_m")]
     return {"axes": {a.key: list(a.values) for a in plan.axes},
             "shape": list(plan.shape),
             "points": points,
+            "cautions": cautions(max(fields, default=None)),
             "base_spec_sha256": plan.identity()["base_spec_sha256"],
             "provenance": provenance(plan.identity()["base_spec_sha256"],
                                      sweep_sha256=plan.sha256)}
@@ -644,6 +650,8 @@ def guide_orders(plan: SweepPlan, values: list[dict] | None = None) -> GuideOrde
     if label is None or not np.isfinite(orders).any():
         return None
     lo, hi = float(np.nanmin(orders)), float(np.nanmax(orders))
+    if hi - lo <= 1e-9 * max(abs(hi), 1.0):
+        return None     # the swept keys do not change the matching condition
     if kind == "one":
         levels = (1.0,) if lo <= 1.0 <= hi else ()
     else:
@@ -697,50 +705,27 @@ def quantity_grid(data: dict, name: str) -> np.ndarray:
     return np.asarray(vals, dtype=float).reshape(shape)
 
 
-def plot_sweep(data: dict, path: str | os.PathLike, *, guides: GuideOrders | None = None):
-    """Line plots (1 axis) or heat maps (2 axes) of the plotted quantities; saved atomically."""
-    from matplotlib.figure import Figure
+def plot_sweep(data: dict, path: str | os.PathLike, *, guides: GuideOrders | None = None,
+               decay_length_m: float | None = None):
+    """Line plots (1 axis) or heat maps (2 axes) of the plotted quantities
+    (:func:`designer.plots.sweep_figure`); saved atomically."""
+    from designer.plots import sweep_figure
 
-    keys = list(data["axes"])
-    panels = [(n, label) for n, label in PLOTTED
-              if np.isfinite(quantity_grid(data, n)).any()] or [PLOTTED[0]]
-    fig = Figure(figsize=(5.2 * len(panels), 4.0), layout="constrained")
-    axs = fig.subplots(1, len(panels), squeeze=False)[0]
-    for ax, (name, label) in zip(axs, panels):
-        grid = quantity_grid(data, name)
-        if len(keys) == 1:
-            x = np.asarray(data["axes"][keys[0]], dtype=float)
-            ax.plot(x, grid, "o-", ms=3, lw=1.2, color="#1f5f8b")
-            ax.set_xlabel(keys[0])
-            ax.set_ylabel(label)
-            if guides is not None:
-                for j, (m, pos) in enumerate(guide_positions(x, guides.orders, guides.levels)):
-                    ax.axvline(pos, color="#b5482a", ls="--", lw=0.9,
-                               label=guides.label if j == 0 else None)
-                    ax.annotate(f"m={m:g}", (pos, 1.0), xycoords=("data", "axes fraction"),
-                                fontsize=7, color="#b5482a", ha="center", va="bottom")
-                if guides.levels:
-                    ax.legend(fontsize=7, loc="best")
-        else:
-            x = np.asarray(data["axes"][keys[0]], dtype=float)
-            y = np.asarray(data["axes"][keys[1]], dtype=float)
-            if len(x) > 1 and len(y) > 1:
-                mesh = ax.pcolormesh(x, y, np.ma.masked_invalid(grid.T), shading="nearest",
-                                     cmap="viridis")
-                fig.colorbar(mesh, ax=ax, label=label)
-                if guides is not None and guides.levels:
-                    cs = ax.contour(x, y, guides.orders.T, levels=sorted(guides.levels),
-                                    colors="#ff7043", linewidths=1.0, linestyles="--")
-                    ax.clabel(cs, fmt=lambda m: f"m={m:g}", fontsize=7)
-                    ax.plot([], [], color="#ff7043", ls="--", label=guides.label)
-                    ax.legend(fontsize=7, loc="upper right")
-            else:
-                ax.text(0.5, 0.5, "grid too small for a heat map", ha="center",
-                        transform=ax.transAxes)
-            ax.set_xlabel(keys[0])
-            ax.set_ylabel(keys[1])
-            ax.set_title(label, fontsize=9)
-    return vio.save_figure(fig, path)
+    return vio.save_figure(sweep_figure(data, PLOTTED, quantity_grid, guides=guides,
+                                        guide_positions=guide_positions,
+                                        decay_length_m=decay_length_m), path)
+
+
+def _decay_length(plan: SweepPlan) -> float | None:
+    """1/e length of the synchronous field of the base spec (for height sweeps)."""
+    from designer.families.base import decay_length
+    from designer.spec import parse_spec
+
+    try:
+        spec = parse_spec(plan.base_raw, source=plan.source, base_dir=plan.base_dir)
+    except (VelomatchError, ValueError):
+        return None
+    return decay_length(spec.context) if spec.family in ("grating", "prism") else None
 
 
 # -- command -----------------------------------------------------------------------
@@ -762,4 +747,6 @@ def sweep_command(args, *, evaluator: Callable = _default_evaluator) -> int:
              if result.failed else ""))
     for what, path in result.files.items():
         print(f"  {what}: {path}")
+    for line in result.data.get("cautions", []):
+        print(line)
     return 1 if result.failed else 0

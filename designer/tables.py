@@ -8,6 +8,7 @@ value.  Unit-suffixed keys are converted to SI here, once (``*_nm`` -> m, ``*_um
 
 from __future__ import annotations
 
+import difflib
 import math
 from collections.abc import Iterable, Mapping
 from typing import Any
@@ -54,7 +55,9 @@ class TableReader:
         if name in self.table:
             return self.table[name]
         if default is REQUIRED:
-            raise self.error(name, "missing required key", with_value=False)
+            near = nearest(name, self.table)
+            hint = f" (the table has {near!r}: did you mean {name!r}?)" if near else ""
+            raise self.error(name, "missing required key" + hint, with_value=False)
         return default
 
     def subtable(self, name: str, *, required: bool = False) -> TableReader:
@@ -147,4 +150,19 @@ class TableReader:
             known = sorted(self._seen)
             hint = ("known keys here: " + ", ".join(known)) if known else "this table takes no keys"
             name = unknown[0]
+            near = nearest(name, known)
+            if near:
+                hint = f"did you mean {near!r}? " + hint
             raise self.error(name, f"unknown key ({hint})", self.table[name])
+
+
+def nearest(name: str, candidates: Iterable[str]) -> str | None:
+    """The candidate closest to ``name`` (same letters up to case, or a near spelling),
+    or None: for "did you mean" hints."""
+    candidates = [c for c in candidates if c != name]
+    for c in candidates:
+        if c.lower() == name.lower():
+            return c
+    lowered = {c.lower(): c for c in candidates}
+    match = difflib.get_close_matches(name.lower(), list(lowered), n=1, cutoff=0.75)
+    return lowered[match[0]] if match else None

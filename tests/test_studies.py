@@ -123,7 +123,8 @@ def test_demo_refuses_a_foreign_folder(tmp_path, capsys):
 # ------------------------------------------------------------------ the studies (slow)
 @pytest.mark.slow
 def test_demo_grating_study(tmp_path, capsys):
-    from designer.cli import SAFETY_NOTE, main
+    from designer.cautions import SAFETY_NOTE
+    from designer.cli import main
 
     out = tmp_path / "demo"
     assert main(["demo", "--out", str(out)]) == 0

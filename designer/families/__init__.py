@@ -12,7 +12,7 @@
     polygons(params, ctx, layout) -> [Polygon]
     check_path(params, ctx) -> None (SpecError if the electron would hit material)
     features(params) -> [designer.fabrication.Feature]
-    draw(ax, params, ctx, layout)
+    draw(ax, params, ctx, layout, **options)   (options: drawing.draw_sample)
 
 Families: ``grating``, ``membrane``, ``prism`` (see their modules).  Grating and
 membrane take a free-form density region ``[sample.freeform]`` (designer.families.region;

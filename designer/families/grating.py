@@ -29,7 +29,6 @@ from dataclasses import dataclass
 import jax.numpy as jnp
 import numpy as np
 
-from designer import drawing
 from designer.errors import SpecError
 from designer.families import base
 from designer.families import region as freeform_region
@@ -77,12 +76,14 @@ class GratingParams:
     shift_m: float
     wavelength_m: float          # laser wavelength the material was evaluated at
     freeform: freeform_region.FreeformRegion | None = None   # [sample.freeform]
+    plane: freeform_region.PlaneInfo = freeform_region.PlaneInfo()   # [sample] plane
 
 
 # ------------------------------------------------------------------------ parsing
 def parse(reader: TableReader, ctx: SampleContext) -> GratingParams:
     """Read the ``[sample]`` table of a grating (``family`` already read by the caller)."""
     reader.raw("family", NAME)
+    plane = freeform_region.parse_plane(reader, NAME)
     material = base.resolve(reader, "material", reader.raw("material"), ctx)
     sides = reader.number("sides", 1, integer=True, minimum=1, maximum=2)
     order = reader.number("order", 1, integer=True, minimum=1)
@@ -115,13 +116,15 @@ def parse(reader: TableReader, ctx: SampleContext) -> GratingParams:
                       period_phase_matched=matched, duty_cycle=duty, tooth_height_m=height,
                       sidewall_angle_rad=angle, substrate=substrate,
                       base_thickness_m=base_t, gap_m=gap, shift_m=shift or 0.0,
-                      wavelength_m=ctx.wavelength_m)
+                      wavelength_m=ctx.wavelength_m, plane=plane)
     problem = _geometry_problem(p)
     if problem:
         key, msg = problem
         raise reader.error(key, msg, reader.raw(key, None))
-    region = freeform_region.parse_freeform(reader, ctx, material, x_limits=(0.0, period_m),
-                                            z_default=(0.0, height))
+    region = freeform_region.parse_freeform(
+        reader, ctx, material, x_limits=(0.0, period_m), z_default=(0.0, height),
+        plane=plane.plane, mirror_z_m=(2 * height + gap) if sides == 2 else None,
+        shift_m=shift or 0.0)
     reader.finish()
     return dataclasses.replace(p, freeform=region) if region is not None else p
 
@@ -155,6 +158,9 @@ def to_table(p: GratingParams) -> dict:
     if p.sides == 2:
         t["gap_nm"] = p.gap_m * 1e9
         t["shift_nm"] = p.shift_m * 1e9
+    if p.plane.plane == "wafer":
+        t["plane"] = "wafer"
+        t["device_layer_nm"] = p.plane.device_layer_m * 1e9
     if p.freeform is not None:
         t["freeform"] = freeform_region.to_table(p.freeform)
     return t
@@ -445,12 +451,17 @@ def features(p: GratingParams) -> list[Feature]:
                                f"{pre}base layer thickness"))
     if p.sides == 2:
         out.append(Feature("gap", p.gap_m, (0.5 * P, h + 0.5 * p.gap_m), "channel gap"))
+    if p.plane.plane == "wafer":
+        return freeform_region.wafer_features(out, p.plane)
     return out
 
 
-def draw(ax, p: GratingParams, ctx: SampleContext, layout: SimulationLayout):
-    """Picture of the sample (geometry, electron path, laser, scale bar, legend)."""
+def draw(ax, p: GratingParams, ctx: SampleContext, layout: SimulationLayout, **options):
+    """Picture of the sample (geometry, electron path, laser, scale bar, legend);
+    ``options`` go to :func:`designer.drawing.draw_sample` (e.g. ``exact=True``)."""
+    from designer import drawing
+
     title = (f"{'double' if p.sides == 2 else 'single'}-sided grating, period "
              f"{p.period_m * 1e9:.4g} nm")
     return drawing.draw_sample(ax, polygons(p, ctx, layout), layout, title=title,
-                               periods=3)
+                               **{"periods": 3, **options})

@@ -20,7 +20,6 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from designer import drawing
 from designer.errors import SpecError
 from designer.families import base
 from designer.families import region as freeform_region
@@ -79,6 +78,7 @@ def _float_list(reader: TableReader, name: str, default):
 def parse(reader: TableReader, ctx: SampleContext) -> MembraneParams:
     """Read the ``[sample]`` table of a membrane."""
     reader.raw("family", NAME)
+    freeform_region.parse_plane(reader, NAME, allowed=("cross_section",))
     material = base.resolve(reader, "material", reader.raw("material"), ctx)
     thickness = reader.length("thickness_nm", 100e-9, minimum=0.0,
                               exclusive_minimum=True)
@@ -380,10 +380,13 @@ def features(p: MembraneParams) -> list[Feature]:
     return out
 
 
-def draw(ax, p: MembraneParams, ctx: SampleContext, layout: SimulationLayout):
+def draw(ax, p: MembraneParams, ctx: SampleContext, layout: SimulationLayout, **options):
+    """Picture of the sample; ``options`` go to :func:`designer.drawing.draw_sample`."""
+    from designer import drawing
+
     what = "unpatterned membrane" if p.pattern == "none" else \
         f"membrane with {len(p.slit_widths_m)} slit(s) per {p.period_m * 1e9:.4g} nm"
     periods = 3 if p.pattern == "slits" else 1
     return drawing.draw_sample(ax, polygons(p, ctx, layout), layout,
                                title=f"{what}, {p.thickness_m * 1e9:.4g} nm thick",
-                               periods=periods)
+                               **{"periods": periods, **options})

@@ -22,9 +22,9 @@ import dataclasses
 import math
 from dataclasses import dataclass
 
-from designer import drawing
 from designer.errors import SpecError
 from designer.families import base
+from designer.families import region as freeform_region
 from designer.families.base import (
     Feature,
     LayerStack,
@@ -62,6 +62,7 @@ class PrismParams:
 def parse(reader: TableReader, ctx: SampleContext) -> PrismParams:
     """Read the ``[sample]`` table of a prism; refuses n beta <= 1 when phase matching."""
     reader.raw("family", NAME)
+    freeform_region.parse_plane(reader, NAME, allowed=("cross_section",))
     material = base.resolve(reader, "material", reader.raw("material"), ctx)
     raw_layers = reader.raw("layers", [])
     if not isinstance(raw_layers, list):
@@ -240,6 +241,10 @@ def features(p: PrismParams) -> list[Feature]:
     return out
 
 
-def draw(ax, p: PrismParams, ctx: SampleContext, layout: SimulationLayout):
+def draw(ax, p: PrismParams, ctx: SampleContext, layout: SimulationLayout, **options):
+    """Picture of the sample; ``options`` go to :func:`designer.drawing.draw_sample`."""
+    from designer import drawing
+
     title = f"prism surface ({p.material.name}), {len(p.layers)} layer(s)"
-    return drawing.draw_sample(ax, polygons(p, ctx, layout), layout, title=title, periods=1)
+    return drawing.draw_sample(ax, polygons(p, ctx, layout), layout, title=title,
+                               **{"periods": 1, **options})

@@ -10,6 +10,26 @@
     density_file = "density.npy"   # one value per pixel, shape (nx, nz), values in [0, 1]
     pixel_nm = [10.0, 10.0]        # pitch of the stored pixels   (with density_file)
     origin_nm = [0.0, -5.0]        # lower-left corner of pixel [0, 0] (with density_file)
+    etch_steps = 1                 # cross-section plane: stacked slabs, each one etch
+    upper = "mirrored"             # two-sided gratings: the upper side's tooth layer too:
+                                   # "independent" | "mirrored" | "shifted" (default: none)
+
+The sample's plane (``[sample] plane``, :func:`parse_plane`) decides what a pattern
+means.  In the cross-section plane (``"cross_section"``) the region's x is along the
+chip surface and z is depth: a pattern can be made by lithography only if, in every one
+of its ``etch_steps`` stacked slabs, each pixel column is solid or void all through
+the slab (vertical sidewalls; one etch step per slab, multi-level lithography for
+k > 1).  A design run therefore optimizes one density per column and slab, extruded
+through the slab (designer.freeform.Parametrization).  In the wafer plane
+(``"wafer"``) the simulated plane is the chip surface: the pattern is the top view of
+structures etched through the device layer, any pixel pattern can be made by one
+etch, and ``etch_steps`` does not apply.
+
+A two-sided grating may take a second region over its upper tooth layer (``upper``):
+its own variables, or the lower region mirrored about the channel centre line
+(``mirrored``), or mirrored and moved by the grating's ``shift_nm`` (``shifted``).
+The pattern array then holds the lower region's rows followed by the upper
+region's rows (each in increasing z).
 
 Without ``density`` / ``density_file`` the region starts from the family's own pattern
 there (the fill fraction of each cell by the family's pieces).
@@ -57,6 +77,98 @@ class FreeformRegion:
     pixel_m: tuple[float, float] | None = None
     origin_m: tuple[float, float] | None = None
     density_file: str | None = None
+    plane: str = "cross_section"
+    etch_steps: int | None = 1            # None in the wafer plane (2D pixels)
+    upper: str | None = None              # None | "independent" | "mirrored" | "shifted"
+    mirror_z_m: float | None = None       # upper region: z' = mirror_z - z
+    shift_m: float = 0.0                  # "shifted": x' = x + shift
+
+
+PLANES = ("cross_section", "wafer")
+
+
+@dataclass(frozen=True)
+class PlaneInfo:
+    """``[sample] plane`` and, in the wafer plane, ``device_layer_nm`` (SI)."""
+
+    plane: str = "cross_section"
+    device_layer_m: float | None = None
+
+
+def parse_plane(sample: TableReader, family: str, *, allowed=PLANES) -> PlaneInfo:
+    """Read ``plane`` (default ``"cross_section"``) and ``device_layer_nm`` (needed in,
+    and only in, the wafer plane)."""
+    plane = sample.string("plane", "cross_section", choices=PLANES)
+    if plane not in allowed:
+        raise sample.error("plane", f"the {family} family is modelled in the cross-section "
+                           "plane only (in the wafer plane use a grating: rows of pillars "
+                           "along the electron path)", plane)
+    if plane == "wafer":
+        if not sample.has("device_layer_nm"):
+            raise sample.error("device_layer_nm", "needed with plane = \"wafer\": the "
+                               "thickness of the layer the pattern is etched through",
+                               with_value=False)
+        t = sample.length("device_layer_nm", None, minimum=0.0, exclusive_minimum=True)
+        return PlaneInfo("wafer", float(t))
+    if sample.has("device_layer_nm"):
+        raise sample.error("device_layer_nm", "only with plane = \"wafer\" (in the "
+                           "cross-section plane the thickness is part of the profile)",
+                           sample.raw("device_layer_nm"))
+    return PlaneInfo()
+
+
+def wafer_features(features, info: PlaneInfo):
+    """A cross-section feature list read in the wafer plane: every size in the plane is
+    lateral (a tooth's height is a pillar's length), and the one etch goes through the
+    device layer, whose aspect ratio is its thickness over the narrowest lateral size."""
+    from designer.fabrication import Feature
+
+    out, lateral = [], []
+    for f in features:
+        if f.kind == "height":
+            f = Feature("solid", f.size_m, f.location, f.description.replace(
+                "tooth height", "pillar length across the path"))
+        elif f.kind == "layer":      # a base layer is a spine of that width in the plane
+            f = Feature("solid", f.size_m, f.location, f.description + " (spine width)")
+        if f.kind in ("solid", "gap"):
+            lateral.append(f.size_m)
+        out.append(f)
+    out.append(Feature("height", info.device_layer_m, (0.0, 0.0),
+                       "etch through the device layer",
+                       lateral_m=min(lateral) if lateral else None))
+    return out
+
+
+def plane_facts(info: PlaneInfo, ctx: SampleContext) -> dict:
+    """What the plane means, for outputs: orientation, device layer, 2D assumption.
+
+    The 2D model is invariant along y.  In the wafer plane y is the wafer normal, so the
+    model takes the etched device layer as infinitely thick; the synchronous field
+    decays away from the structure over ``1/kappa = beta gamma lambda / (2 pi)`` (the
+    decay length of the evanescent harmonic; R. J. England et al., Rev. Mod. Phys. 86,
+    1337, 2014), so the assumption holds when the layer is thick compared with it
+    (and the laser spot is confined to the layer); a thin layer couples less than
+    computed and its out-of-plane guiding is not modelled.
+    """
+    from designer.families.base import decay_length
+
+    if info.plane != "wafer":
+        return {"plane": "cross_section",
+                "meaning": "x-z is the cross-section: z is the wafer normal, structures "
+                           "are invariant along y (lines along y in the layout)"}
+    decay = decay_length(ctx)
+    ratio = info.device_layer_m / decay
+    note = ("2D assumption: the device layer is taken as infinitely thick along the "
+            f"wafer normal; it is {info.device_layer_m * 1e9:.4g} nm = {ratio:.3g} decay "
+            f"lengths (beta gamma lambda / 2 pi = {decay * 1e9:.4g} nm)")
+    if ratio < 3.0:
+        note += ("; that is not thick compared with the decay length, so the true "
+                 "coupling is lower than computed (out-of-plane leakage not modelled)")
+    return {"plane": "wafer",
+            "meaning": "x-z is the chip surface: the pattern is the top view, etched "
+                       "through the device layer; the electron runs in the plane",
+            "device_layer_m": info.device_layer_m, "decay_length_m": decay,
+            "device_layer_over_decay_length": ratio, "assumption": note}
 
 
 # ------------------------------------------------------------------------ parsing
@@ -78,10 +190,13 @@ def _pair(r: TableReader, name: str, default, scale: float = 1e-9, *, increasing
 
 
 def parse_freeform(sample: TableReader, ctx: SampleContext, material: MaterialRef, *,
-                   x_limits: tuple[float, float], z_default: tuple[float, float]
-                   ) -> FreeformRegion | None:
+                   x_limits: tuple[float, float], z_default: tuple[float, float],
+                   plane: str = "cross_section", mirror_z_m: float | None = None,
+                   shift_m: float = 0.0) -> FreeformRegion | None:
     """Read ``[sample.freeform]`` (None when absent).  ``x_limits``: the unit cell along
-    x; the region must lie inside it.  Every bad value is a SpecError."""
+    x; the region must lie inside it.  ``mirror_z_m``: where an upper region may go
+    (two-sided structures; ``z' = mirror_z - z``), None when there is no upper side.
+    Every bad value is a SpecError."""
     if not sample.has("freeform"):
         return None
     r = sample.subtable("freeform")
@@ -112,8 +227,26 @@ def parse_freeform(sample: TableReader, ctx: SampleContext, material: MaterialRe
         for key, v in (("pixel_nm", pixel), ("origin_nm", origin)):
             if v is not None:
                 raise r.error(key, "only with density_file", r.raw(key))
+    if plane == "wafer":
+        if r.has("etch_steps"):
+            raise r.error("etch_steps", "only in the cross-section plane: in the wafer "
+                          "plane the pattern is the top view, made by one etch through "
+                          "the device layer", r.raw("etch_steps"))
+        steps = None
+    else:
+        steps = r.number("etch_steps", 1, integer=True, minimum=1, maximum=64)
+    upper = r.string("upper", "none", choices=("none",) + ff.UPPER_MODES)
+    upper = None if upper == "none" else upper
+    if upper is not None:
+        if mirror_z_m is None:
+            raise r.error("upper", "only for two-sided structures (sides = 2)", upper)
+        if not (z[1] < mirror_z_m - z[1]):
+            raise r.error("z_nm", "with an upper region the region must stay below the "
+                          f"channel centre (z < {0.5 * mirror_z_m * 1e9:.4g} nm)",
+                          [v * 1e9 for v in z])
     r.finish()
-    return FreeformRegion(x, z, mat, value, density, pixel, origin, name)
+    return FreeformRegion(x, z, mat, value, density, pixel, origin, name, plane, steps,
+                          upper, mirror_z_m if upper else None, shift_m if upper else 0.0)
 
 
 def _load_density(r: TableReader, name: str, base_dir) -> np.ndarray:
@@ -144,6 +277,10 @@ def to_table(fr: FreeformRegion) -> dict:
         t["origin_nm"] = [fr.origin_m[0] * 1e9, fr.origin_m[1] * 1e9]
     elif fr.density_value is not None:
         t["density"] = fr.density_value
+    if fr.plane != "wafer" and fr.etch_steps != 1:
+        t["etch_steps"] = fr.etch_steps
+    if fr.upper is not None:
+        t["upper"] = fr.upper
     return t
 
 
@@ -156,9 +293,9 @@ def with_pattern(fr: FreeformRegion, rho: np.ndarray, layout, file_name: str,
     """
     cells = region_cells(fr, layout)
     rho = np.asarray(rho, dtype=float)
-    if rho.shape != cells.shape:
+    if rho.shape != pattern_shape(fr, layout):
         raise ValueError(f"density shape {rho.shape} does not match the region's "
-                         f"{cells.shape} cells")
+                         f"{pattern_shape(fr, layout)} cells")
     g = layout.grid
     return dataclasses.replace(fr, density_value=None, density=rho, pixel_m=(g.dx, g.dz),
                                origin_m=(g.x0 + cells.i0 * g.dx, g.z0 + cells.k0 * g.dz),
@@ -181,6 +318,63 @@ def region_cells(fr: FreeformRegion, layout) -> ff.RegionCells:
     return ff.region_cells(density_patch(fr, layout), layout.grid)
 
 
+def parts(fr: FreeformRegion, layout) -> list[ff.RegionCells]:
+    """The region's cell blocks: the region, then the upper region (same shape) if any."""
+    lower = region_cells(fr, layout)
+    if fr.upper is None:
+        return [lower]
+    g = layout.grid
+    up = dataclasses.replace(fr, z_m=(fr.mirror_z_m - fr.z_m[1], fr.mirror_z_m - fr.z_m[0]))
+    cells = region_cells(up, layout)
+    # the same number of rows as the lower region (mirrored row for row)
+    k0 = min(cells.k0, g.nz - lower.shape[1])
+    return [lower, ff.RegionCells(cells.i0, cells.i1, k0, k0 + lower.shape[1],
+                                  cells.periodic_x)]
+
+
+def pattern_shape(fr: FreeformRegion, layout) -> tuple[int, int]:
+    """Shape of the region pattern: (nx, rows), rows summed over the parts."""
+    ps = parts(fr, layout)
+    return (ps[0].shape[0], sum(c.shape[1] for c in ps))
+
+
+def split(fr: FreeformRegion, layout, pattern) -> list:
+    """The pattern's block of each part (see :func:`parts`)."""
+    out, k = [], 0
+    for c in parts(fr, layout):
+        out.append(pattern[:, k:k + c.shape[1]])
+        k += c.shape[1]
+    return out
+
+
+def parametrization(fr: FreeformRegion, layout) -> ff.Parametrization:
+    """The design variables of the region (designer.freeform.Parametrization): column
+    densities per etch step in the cross-section plane, pixels in the wafer plane."""
+    cells = region_cells(fr, layout)
+    roll = int(round(fr.shift_m / layout.grid.dx)) if fr.upper == "shifted" else 0
+    slabs = None if fr.plane == "wafer" else fr.etch_steps
+    if slabs is not None and slabs > cells.shape[1]:
+        raise ValueError(f"{slabs} etch steps need at least {slabs} grid rows in the "
+                         f"region; it has {cells.shape[1]} (use a finer grid)")
+    return ff.Parametrization(cells.shape[0], cells.shape[1], slabs, fr.upper, roll)
+
+
+def slab_rows(fr: FreeformRegion, layout) -> list[tuple[int, int]]:
+    """Row ranges ``[a, b)`` of the etch steps within one part (bottom first)."""
+    cells = region_cells(fr, layout)
+    n = cells.shape[1]
+    if fr.plane == "wafer":
+        return [(0, n)]
+    counts = ff.slab_counts(n, min(fr.etch_steps, n))
+    edges = np.cumsum((0,) + counts)
+    return [(int(a), int(b)) for a, b in zip(edges, edges[1:])]
+
+
+def part_origin(cells: ff.RegionCells, layout) -> tuple[float, float]:
+    g = layout.grid
+    return (g.x0 + cells.i0 * g.dx, g.z0 + cells.k0 * g.dz)
+
+
 def resample(density: np.ndarray, pixel_m, origin_m, cells: ff.RegionCells, grid
              ) -> np.ndarray:
     """Nearest-neighbour values of a stored pixel density at the region's cell centres:
@@ -195,13 +389,25 @@ def resample(density: np.ndarray, pixel_m, origin_m, cells: ff.RegionCells, grid
 def start_density(fr: FreeformRegion, layout, family_fill) -> np.ndarray:
     """The spec's density on the region cells (numpy): stored (resampled), uniform, or
     ``family_fill()`` -- the family's own cell fill fractions (nx, nz) of the grid."""
-    cells = region_cells(fr, layout)
+    ps = parts(fr, layout)
     if fr.density is not None:
-        return resample(fr.density, fr.pixel_m, fr.origin_m, cells, layout.grid)
+        return _resample_stored(fr, ps, layout)
     if fr.density_value is not None:
-        return np.full(cells.shape, float(fr.density_value))
+        return np.full(pattern_shape(fr, layout), float(fr.density_value))
     fill = np.asarray(family_fill())
-    return np.clip(fill[cells.i0:cells.i1, cells.k0:cells.k1], 0.0, 1.0)
+    return np.concatenate([np.clip(fill[c.i0:c.i1, c.k0:c.k1], 0.0, 1.0) for c in ps], axis=1)
+
+
+def _resample_stored(fr: FreeformRegion, ps, layout) -> np.ndarray:
+    d = np.asarray(fr.density)
+    if len(ps) == 1:
+        return resample(d, fr.pixel_m, fr.origin_m, ps[0], layout.grid)
+    half = d.shape[1] // 2
+    lower = resample(d[:, :half], fr.pixel_m, fr.origin_m, ps[0], layout.grid)
+    # the upper block, read in the mirror image of the lower region's coordinates
+    upper = resample(d[:, half:][:, ::-1], fr.pixel_m, fr.origin_m,
+                     ps[0], layout.grid)[:, ::-1]
+    return np.concatenate([lower, upper], axis=1)
 
 
 def physical_density(fr: FreeformRegion, layout, family_fill) -> np.ndarray:
@@ -212,16 +418,17 @@ def physical_density(fr: FreeformRegion, layout, family_fill) -> np.ndarray:
 def place(fr: FreeformRegion, eps_x, eps_z, rho_bar, layout):
     """The family's ``(eps_x, eps_z)`` with the region replaced by ``rho_bar``'s eps
     (linear interpolation, freeform.place_eps); JAX-traceable in ``rho_bar``."""
-    cells = region_cells(fr, layout)
     eps = ff.density_to_eps(rho_bar, 1.0 + 0j, complex(fr.material.eps))
-    return ff.place_eps(eps_x, eps_z, eps, cells)
+    for cells, block in zip(parts(fr, layout), split(fr, layout, eps)):
+        eps_x, eps_z = ff.place_eps(eps_x, eps_z, block, cells)
+    return eps_x, eps_z
 
 
 def solid_mask(fr: FreeformRegion, layout, mask: np.ndarray, rho_phys) -> np.ndarray:
     """A cell material mask with the region's cells set from ``rho_phys > 0.5``."""
-    cells = region_cells(fr, layout)
     out = np.array(mask, dtype=bool)
-    out[cells.i0:cells.i1, cells.k0:cells.k1] = np.asarray(rho_phys) > 0.5
+    for cells, block in zip(parts(fr, layout), split(fr, layout, np.asarray(rho_phys))):
+        out[cells.i0:cells.i1, cells.k0:cells.k1] = block > 0.5
     n = layout.pml_cells_z
     out[:, :n] = False
     out[:, out.shape[1] - n:] = False
@@ -242,25 +449,32 @@ def polygons(fr: FreeformRegion, layout, family_polygons: list[Polygon], rho_phy
 
     from designer.layout import rectangle, trace_pixels
 
-    cells = region_cells(fr, layout)
     g = layout.grid
-    x0, z0 = pixel_origin(fr, layout)
-    box = rectangle(x0, z0, x0 + cells.shape[0] * g.dx, z0 + cells.shape[1] * g.dz) * 1e9
+    ps = parts(fr, layout)
+    boxes = []
+    for cells in ps:
+        x0, z0 = part_origin(cells, layout)
+        boxes.append(rectangle(x0, z0, x0 + cells.shape[0] * g.dx,
+                               z0 + cells.shape[1] * g.dz) * 1e9)
     out = []
     for poly in family_polygons:
-        for piece in gdstk.boolean([np.asarray(poly.vertices_m) * 1e9], [box], "not",
+        for piece in gdstk.boolean([np.asarray(poly.vertices_m) * 1e9], boxes, "not",
                                    precision=1e-4):
             out.append(Polygon(np.asarray(piece.points) * 1e-9, poly.material_name, poly.eps))
-    solid = np.asarray(rho_phys) > 0.5
-    for verts in trace_pixels(solid, (g.dx, g.dz), (x0, z0)):
-        out.append(Polygon(verts, fr.material.name, complex(fr.material.eps)))
+    for cells, block in zip(ps, split(fr, layout, np.asarray(rho_phys))):
+        for verts in trace_pixels(block > 0.5, (g.dx, g.dz), part_origin(cells, layout)):
+            out.append(Polygon(verts, fr.material.name, complex(fr.material.eps)))
     return out
 
 
 def check_path_clear(fr: FreeformRegion, z_electron: float, ctx: SampleContext) -> None:
     """SpecError if an electron moving along x at ``z_electron`` would cross the region."""
-    if fr.z_m[0] <= z_electron <= fr.z_m[1]:
-        raise SpecError(ctx.source, "sample.freeform.z_nm",
-                        f"the free-form region (z = {fr.z_m[0] * 1e9:.4g} .. "
-                        f"{fr.z_m[1] * 1e9:.4g} nm) contains the electron's path at "
-                        f"z = {z_electron * 1e9:.4g} nm", [v * 1e9 for v in fr.z_m])
+    ranges = [fr.z_m]
+    if fr.upper is not None:
+        ranges.append((fr.mirror_z_m - fr.z_m[1], fr.mirror_z_m - fr.z_m[0]))
+    for lo, hi in ranges:
+        if lo <= z_electron <= hi:
+            raise SpecError(ctx.source, "sample.freeform.z_nm",
+                            f"the free-form region (z = {lo * 1e9:.4g} .. "
+                            f"{hi * 1e9:.4g} nm) contains the electron's path at "
+                            f"z = {z_electron * 1e9:.4g} nm", [v * 1e9 for v in fr.z_m])

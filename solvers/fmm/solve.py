@@ -1,0 +1,255 @@
+"""Plane-wave solution of a stack of 2D-periodic layers (Fourier modal method / RCWA).
+
+Geometry: z is the stack normal; layers are listed bottom to top, the lowest starts at
+z = 0; a homogeneous medium ``eps_below`` fills z < 0 and ``eps_above`` the space above
+the top layer.  A plane wave of vacuum wavelength ``wavelength`` arrives from
+``incidence = "above"`` (travelling -z) or ``"below"`` (+z) at polar angle ``theta``
+(from the z axis, in the incidence medium) and azimuth ``phi`` (from x):
+``k_par = sqrt(eps_in) k0 sin(theta) (cos phi, sin phi)``.  Its electric field is
+``E0 (cos(psi) p + sin(psi) s)`` with ``s = (-sin phi, cos phi, 0)``, ``p = s x k_hat``
+(``polarization = psi``; ``psi = 0`` is p (TM), ``pi/2`` is s (TE)), peak amplitude
+``E0 = 1 V/m`` and phase zero at the origin.  For ``phi = 0`` the p and s waves are
+exactly those of :mod:`solvers.layers` (same signs and phase reference).
+
+Harmonic ``g`` carries ``exp(i (k_par + G_g) . r_par)``; the modes of each layer are
+described in :mod:`solvers.fmm.modes`; layers are joined with S-matrices
+(:mod:`solvers.fmm.smatrix`).  The returned :class:`FMMSolution` exposes every layer's
+modes and their up/down amplitudes (the electron coupling is integrated from them in
+closed form, :mod:`solvers.fmm.coupling`).
+
+Reflectance and transmittance are ratios of the z component of the time-averaged
+Poynting vector, ``S_z = Re(E_x H_y^* - E_y H_x^*)/2`` summed over the harmonics (only
+propagating orders carry power in lossless outer media; R and T assume lossless outer
+media).  Every quantity is a JAX function of thicknesses, permittivities, shape
+parameters, lattice vectors, wavelength and angles.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from functools import partial
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from . import smatrix as sm
+from .geometry import Lattice, PatternedLayer, UniformLayer, harmonic_indices, _orders_pair
+from .modes import FACTORIZATIONS, LayerModes, patterned_matrices, patterned_modes, uniform_modes
+
+jax.config.update("jax_enable_x64", True)
+
+INCIDENCES = ("above", "below")
+
+
+@partial(jax.tree_util.register_dataclass,
+         data_fields=["lattice", "k0", "kx", "ky", "eps_below", "eps_above", "below",
+                      "layers", "above", "reflectance", "transmittance",
+                      "reflected_orders", "transmitted_orders", "polarization"],
+         meta_fields=["orders", "incidence"])
+@dataclass(frozen=True)
+class FMMSolution:
+    """Solved stack.
+
+    ``kx, ky`` (M,): tangential wavenumbers of the harmonics divided by ``k0 = 2 pi /
+    wavelength`` (1/m); harmonic order as :func:`solvers.fmm.geometry.harmonic_indices`,
+    (0, 0) at index M // 2.  ``below``, ``layers`` (tuple, bottom to top), ``above``:
+    :class:`~solvers.fmm.modes.LayerModes`.  ``reflectance``, ``transmittance``: power
+    fractions; ``reflected_orders``, ``transmitted_orders`` (M,): per harmonic.
+    """
+
+    lattice: Lattice
+    k0: jax.Array
+    kx: jax.Array
+    ky: jax.Array
+    eps_below: jax.Array
+    eps_above: jax.Array
+    below: LayerModes
+    layers: tuple
+    above: LayerModes
+    reflectance: jax.Array
+    transmittance: jax.Array
+    reflected_orders: jax.Array
+    transmitted_orders: jax.Array
+    polarization: jax.Array
+    orders: tuple = (0, 0)
+    incidence: str = "above"
+
+    @property
+    def omega(self):
+        return self.k0 * 299792458.0
+
+    @property
+    def z_top(self):
+        return self.above.z_bottom
+
+    @property
+    def media(self):
+        """All media bottom to top: ``(below, *layers, above)``."""
+        return (self.below, *self.layers, self.above)
+
+
+def _polarization_angle(polarization):
+    if isinstance(polarization, str):
+        if polarization == "p":
+            return 0.0
+        if polarization == "s":
+            return np.pi / 2
+        raise ValueError(f"polarization must be 'p', 's' or an angle in rad, got "
+                         f"{polarization!r}")
+    return polarization
+
+
+def default_normal_samples(orders):
+    n1, n2 = _orders_pair(orders)
+    need = 8 * max(n1, n2, 4)
+    return int(2 ** np.ceil(np.log2(need)))
+
+
+def solve(lattice: Lattice, layers, eps_below=1.0, eps_above=1.0, *, wavelength, theta=0.0,
+          phi=0.0, polarization=0.0, orders=5, incidence="above", factorization="normal",
+          normal_samples=None) -> FMMSolution:
+    """Solve the stack for one incident plane wave (conventions in the module docstring).
+
+    Args:
+      lattice: :class:`~solvers.fmm.geometry.Lattice` (m).
+      layers: sequence of :class:`UniformLayer` / :class:`PatternedLayer`, bottom to top.
+      eps_below, eps_above: relative permittivities of the outer media (complex).
+      wavelength: vacuum wavelength (m).
+      theta, phi: polar and azimuthal angle of incidence (rad) in the incidence medium.
+      polarization: angle psi (rad) between E and the p direction, or "p" / "s".
+      orders: N or (N1, N2): harmonics ``|m| <= N1, |n| <= N2``.
+      incidence: "above" or "below".
+      factorization: "normal" (normal-vector rule, default) or "laurent".
+      normal_samples: samples per lattice direction for the normal-vector field
+        (default ``8 max(N, 4)`` rounded up to a power of 2).
+
+    Returns:
+      :class:`FMMSolution`.
+    """
+    if incidence not in INCIDENCES:
+        raise ValueError(f"incidence must be one of {INCIDENCES}, got {incidence!r}")
+    if factorization not in FACTORIZATIONS:
+        raise ValueError(f"factorization must be one of {FACTORIZATIONS}, got "
+                         f"{factorization!r}")
+    layers = tuple(layers)
+    for lay in layers:
+        if not isinstance(lay, (UniformLayer, PatternedLayer)):
+            raise TypeError(f"layers must be UniformLayer or PatternedLayer, got "
+                            f"{type(lay).__name__}")
+        if isinstance(lay, PatternedLayer) and len(lay.shapes) != len(lay.eps_shapes):
+            raise ValueError("PatternedLayer needs one entry of eps_shapes per shape")
+    orders = _orders_pair(orders)
+    samples = normal_samples or default_normal_samples(orders)
+    return _solve(lattice, layers, eps_below, eps_above, wavelength, theta, phi,
+                  _polarization_angle(polarization), orders=orders, incidence=incidence,
+                  factorization=factorization, samples=int(samples))
+
+
+def _flux(e, h, m):
+    """Per-harmonic ``Re(E_x h_y^* - E_y h_x^*)`` (proportional to S_z)."""
+    return jnp.real(e[:m] * jnp.conj(h[m:]) - e[m:] * jnp.conj(h[:m]))
+
+
+@partial(jax.jit, static_argnames=("orders", "incidence", "factorization", "samples"))
+def _solve(lattice, layers, eps_below, eps_above, wavelength, theta, phi, psi, *, orders,
+           incidence, factorization, samples):
+    k0 = 2.0 * np.pi / jnp.asarray(wavelength, dtype=float)
+    eps_below = jnp.asarray(eps_below, dtype=complex)
+    eps_above = jnp.asarray(eps_above, dtype=complex)
+    eps_in = eps_above if incidence == "above" else eps_below
+    n_in = jnp.sqrt(eps_in)
+    theta = jnp.asarray(theta, dtype=float)
+    phi = jnp.asarray(phi, dtype=float)
+    psi = jnp.asarray(psi, dtype=float)
+    kx0 = n_in * jnp.sin(theta) * jnp.cos(phi)
+    ky0 = n_in * jnp.sin(theta) * jnp.sin(phi)
+    mm, nn = harmonic_indices(orders)
+    b1, b2 = lattice.reciprocal()
+    kx = kx0 + (mm * b1[0] + nn * b2[0]) / k0
+    ky = ky0 + (mm * b1[1] + nn * b2[1]) / k0
+    m = kx.shape[0]
+    g0 = m // 2
+
+    # modes of every medium, bottom to top
+    media = [uniform_modes(eps_below, kx, ky)]
+    thick = []
+    for lay in layers:
+        if isinstance(lay, UniformLayer):
+            media.append(uniform_modes(lay.eps, kx, ky))
+        else:
+            mats = patterned_matrices(lay, lattice, orders, factorization, samples)
+            media.append(patterned_modes(mats, kx, ky))
+        thick.append(jnp.asarray(lay.thickness, dtype=float))
+    media.append(uniform_modes(eps_above, kx, ky))
+    n_lay = len(layers)
+    z_b = [jnp.asarray(0.0)]
+    for t in thick:
+        z_b.append(z_b[-1] + t)
+    z_top = z_b[-1]
+
+    # S-matrices: interfaces k = 0..L between media k and k+1 (media index 0 = below)
+    ints = [sm.interface(media[k][1], media[k][2], media[k + 1][1], media[k + 1][2])
+            for k in range(n_lay + 1)]
+    xs = [jnp.exp(1j * k0 * media[j + 1][0] * thick[j]) for j in range(n_lay)]
+    props = [sm.propagation(x) for x in xs]
+    pre = [ints[0]]
+    for j in range(1, n_lay):
+        pre.append(sm.star(sm.star(pre[-1], props[j - 1]), ints[j]))
+    suf = [None] * n_lay
+    if n_lay:
+        suf[-1] = ints[-1]
+        for j in range(n_lay - 2, -1, -1):
+            suf[j] = sm.star(ints[j + 1], sm.star(props[j + 1], suf[j + 1]))
+        total = sm.star(sm.star(pre[-1], props[-1]), suf[-1])
+    else:
+        total = ints[0]
+
+    # incident wave (tangential E of the (0, 0) harmonic; W = 1 in the outer media)
+    q_in = media[-1][0][g0] if incidence == "above" else media[0][0][g0]
+    cos_t = q_in / n_in
+    sign = -1.0 if incidence == "above" else 1.0
+    ex = jnp.cos(psi) * sign * jnp.cos(phi) * cos_t - jnp.sin(psi) * jnp.sin(phi)
+    ey = jnp.cos(psi) * sign * jnp.sin(phi) * cos_t + jnp.sin(psi) * jnp.cos(phi)
+    e_inc = jnp.zeros(2 * m, dtype=complex).at[g0].set(ex).at[m + g0].set(ey)
+    zero = jnp.zeros(2 * m, dtype=complex)
+    if incidence == "above":
+        u0, dtop = zero, e_inc * jnp.exp(-1j * k0 * q_in * z_top)
+    else:
+        u0, dtop = e_inc, zero
+
+    d0 = total.r_bot @ u0 + total.t_dn @ dtop
+    utop = total.t_up @ u0 + total.r_top @ dtop
+
+    modes = []
+    for j in range(n_lay):
+        q, w, v, z = media[j + 1]
+        x = xs[j]
+        a, b = pre[j], suf[j]
+        one = jnp.eye(2 * m, dtype=complex)
+        lhs = one - (a.r_top * x[None, :]) @ (b.r_bot * x[None, :])
+        u = jnp.linalg.solve(lhs, a.t_up @ u0 + (a.r_top * x[None, :]) @ (b.t_dn @ dtop))
+        d = (b.r_bot * x[None, :]) @ u + b.t_dn @ dtop
+        modes.append(LayerModes(q=q, w=w, v=v, ez=z, up=u, down=d, z_bottom=z_b[j],
+                                thickness=thick[j]))
+    qb, wb, vb, zb = media[0]
+    qa, wa, va, za = media[-1]
+    below = LayerModes(q=qb, w=wb, v=vb, ez=zb, up=u0, down=d0, z_bottom=jnp.asarray(0.0),
+                       thickness=jnp.asarray(0.0))
+    above = LayerModes(q=qa, w=wa, v=va, ez=za, up=utop, down=dtop, z_bottom=z_top,
+                       thickness=jnp.asarray(0.0))
+
+    # power balance through S_z in the outer media
+    f_d0 = -_flux(d0, -(vb @ d0), m)
+    f_up = _flux(utop, va @ utop, m)
+    if incidence == "above":
+        f_in = -_flux(dtop, -(va @ dtop), m)[g0]
+        refl, trans = f_up / f_in, f_d0 / f_in
+    else:
+        f_in = _flux(u0, vb @ u0, m)[g0]
+        refl, trans = f_d0 / f_in, f_up / f_in
+    return FMMSolution(lattice=lattice, k0=k0, kx=kx, ky=ky, eps_below=eps_below,
+                       eps_above=eps_above, below=below, layers=tuple(modes), above=above,
+                       reflectance=jnp.sum(refl), transmittance=jnp.sum(trans),
+                       reflected_orders=refl, transmitted_orders=trans, polarization=psi,
+                       orders=orders, incidence=incidence)
