@@ -10,11 +10,11 @@ solution where the sample is a planar stack (unpatterned membranes, prisms);
 solver when the sample is layered and FDFD otherwise.
 
 Error estimate (FDFD): the coupling is computed at the chosen step h and again at
-1.5 h; assuming error ∝ h^p with p = 1 (conservative: subpixel averaging gives
-between first and second order where corners are present), the error of the
-reported value is estimated as |I_h − I_1.5h| / (1.5^p − 1) / |I_h|
-(L. F. Richardson, Phil. Trans. R. Soc. A 210, 307, 1911).  The layer-stack solver is
-exact up to rounding; its estimate is 0.
+about 1.5 h and 2.25 h (each rounded to whole cells per period); the observed order of
+convergence p and the error of the reported value follow from the three results
+(L. F. Richardson, Phil. Trans. R. Soc. A 210, 307, 1911; the three-grid procedure of
+I. B. Celik et al., J. Fluids Eng. 130, 078001, 2008), see :func:`three_grid_estimate`.
+The layer-stack solver is exact up to rounding; its estimate is 0.
 
 Largest field in material (README, Conventions): at re-entrant corners of sharp-edged
 dielectrics the field is singular, so the sampled maximum does not converge.  Real
@@ -46,6 +46,7 @@ from designer.spec import Spec, parse_spec
 
 C0 = constants.c
 CORNER_RULE = "cells within corner_radius of a polygon corner excluded"
+ERROR_GRID_FACTORS = (1.5, 2.25)   # the two coarser grids of the error estimate (x step)
 
 
 @dataclass(frozen=True)
@@ -84,6 +85,84 @@ class Evaluation:
     fourier_orders: int | None = None     # fmm runs: the order count reported
     order_study: Any = None               # fmm runs: designer.holes.OrderStudy
     spot_integral_V: tuple | None = None  # fmm runs: (mean |I|, rms |I|) over the spot
+    error_order: float | None = None            # observed order p of the estimate
+    error_order_used: float | None = None       # the order the estimate uses
+    error_grids_m: tuple[float, ...] | None = None
+    error_note: str | None = None
+
+
+ORDER_RANGE = (1.0, 2.0)   # the orders the estimate may use (see three_grid_estimate)
+
+
+@dataclass(frozen=True)
+class ErrorEstimate:
+    """Relative error of the finest of three results, the observed order and why."""
+
+    relative_error: float
+    observed_order: float | None
+    order_used: float
+    note: str
+
+
+def observed_order(e21: complex, e32: complex, r21: float, r32: float) -> float | None:
+    """The order p with ``|e32 / e21| = r21^p (r32^p - 1) / (r21^p - 1)`` (bisection on
+    [0.001, 12]), or None when the differences do not shrink in one direction
+    (``Re(e32 conj e21) <= 0``) or no such p exists."""
+    if abs(e21) == 0.0 or (e32 * e21.conjugate()).real <= 0:
+        return None
+    target = abs(e32) / abs(e21)
+
+    def g(q):
+        return r21**q * (r32**q - 1.0) / (r21**q - 1.0) - target
+
+    lo, hi = 1e-3, 12.0
+    if not g(lo) < 0 < g(hi):
+        return None
+    for _ in range(200):
+        mid = 0.5 * (lo + hi)
+        lo, hi = (mid, hi) if g(mid) < 0 else (lo, mid)
+    return 0.5 * (lo + hi)
+
+
+def three_grid_estimate(values, steps) -> ErrorEstimate:
+    """Discretization error of ``values[0]`` (complex results at ``steps`` h1 < h2 < h3).
+
+    With ``I(h) = I* + C h^p``: ``e21 = I2 − I1``, ``e32 = I3 − I2`` and
+    ``|e32 / e21| = r21^p (r32^p − 1) / (r21^p − 1)``, ``r21 = h2/h1``, ``r32 = h3/h2``,
+    gives the observed order p (:func:`observed_order`; for r21 = r32 = r,
+    ``p = ln|e32/e21| / ln r``), and the error of I1 is ``|e21| / (r21^p − 1) / |I1|``
+    (L. F. Richardson, Phil. Trans. R. Soc. A 210, 307, 1911; I. B. Celik, U. Ghia,
+    P. J. Roache, C. J. Freitas, H. Coleman, P. E. Raad, J. Fluids Eng. 130, 078001,
+    2008, who also limit the order used).
+
+    The order used is the observed one clipped to ORDER_RANGE = [1, 2]: the scheme is
+    second order where interfaces are smooth (subpixel averaging) and first order near
+    corners, so an observed order outside that range is a sign of results outside the
+    asymptotic range rather than of a faster or slower scheme.  When the differences do
+    not shrink in one direction at all (the error is then dominated by where the
+    interfaces fall inside the cells, which changes erratically from grid to grid), the
+    estimate is ``max(|e21|, |e32|) / (r^2 − 1)``: the larger difference with the
+    nominal second order.  ``note`` says which rule was used.
+    """
+    i1, i2, i3 = (complex(v) for v in values)
+    h1, h2, h3 = (float(h) for h in steps)
+    r21, r32 = h2 / h1, h3 / h2
+    e21, e32 = i2 - i1, i3 - i2
+    scale = abs(i1) if i1 != 0 else 1.0
+    if abs(e21) == 0.0:
+        return ErrorEstimate(0.0, None, ORDER_RANGE[1], "the two finest grids agree exactly")
+    p = observed_order(e21, e32, r21, r32)
+    if p is None:
+        q = ORDER_RANGE[1]
+        err = max(abs(e21) / (r21**q - 1.0), abs(e32) / (r32**q - 1.0)) / scale
+        return ErrorEstimate(err, None, q, "the differences between the three grids do "
+                             "not converge in one direction (not in the asymptotic "
+                             "range): the larger difference at the nominal second order")
+    q = min(max(p, ORDER_RANGE[0]), ORDER_RANGE[1])
+    note = f"observed order {p:.2f} (three grids)"
+    if q != p:
+        note += f", used {q:g} (limited to [{ORDER_RANGE[0]:g}, {ORDER_RANGE[1]:g}])"
+    return ErrorEstimate(abs(e21) / (r21**q - 1.0) / scale, p, q, note)
 
 
 def angular_frequency(wavelength_m: float) -> float:
@@ -111,17 +190,62 @@ def choose_method(spec: Spec) -> str:
     return "layers" if layered else "fdfd"
 
 
+CELLS_PER_DECAY_LENGTH = 6      # cells per evanescent decay length beta gamma lambda / 2 pi
+CELLS_PER_SURFACE_DISTANCE = 4  # cells between the electron and the nearest surface
+FINEST_DEFAULT_FRACTION = 0.25  # the default step is at least this share of the wavelength rule
+
+
+def electron_surface_distance(spec: Spec, layout=None) -> float | None:
+    """Distance (m) from an x-path to the nearest material, or None (paths along z,
+    or no material).  The path is the line z = z_e; the polygons of the cross-section
+    are convex pieces, so the distance is the smallest |z_vertex - z_e| of the pieces
+    that do not straddle the line."""
+    family = get_family(spec.family)
+    if layout is None:
+        layout = family.layout(spec.sample, spec.context, spec.laser.wavelength_m / 20.0)
+    if layout.path.direction != "x":
+        return None
+    z_e = layout.path.z_m
+    best = None
+    for poly in family.polygons(spec.sample, spec.context, layout):
+        z = np.asarray(poly.vertices_m)[:, 1]
+        d = 0.0 if z.min() <= z_e <= z.max() else float(np.min(np.abs(z - z_e)))
+        best = d if best is None else min(best, d)
+    return best
+
+
 def default_grid_step(spec: Spec, values: dict | None = None) -> float:
-    """Grid step from the wavelength and the densest material (solvers.fdfd.spacing_for:
-    DEFAULT_CELLS_PER_WAVELENGTH cells per wavelength there)."""
+    """Default FDFD grid step (m): the smallest of
+
+    * the wavelength rule: DEFAULT_CELLS_PER_WAVELENGTH cells per wavelength in the
+      densest material (solvers.fdfd.spacing_for);
+    * for paths along x, the evanescent decay length of the synchronous harmonic,
+      ``beta gamma lambda / 2 pi`` (e.g. R. J. England et al., Rev. Mod. Phys. 86, 1337,
+      2014), over CELLS_PER_DECAY_LENGTH, and the electron's distance to the nearest
+      surface over CELLS_PER_SURFACE_DISTANCE: the coupling falls off on that scale,
+      and the grid's second-order error in where an interface sits below the electron
+      shows as a jitter periodic in the cell size when a dimension is scanned;
+
+    but not finer than FINEST_DEFAULT_FRACTION of the wavelength rule (an electron a
+    nanometre from a surface must not make the default grid explode; give
+    ``[solver] grid_step_nm`` for more).
+    """
     from solvers.fdfd import spacing_for
+    from designer.families.base import decay_length
 
     family = get_family(spec.family)
     probe = family.layout(spec.sample, spec.context, spec.laser.wavelength_m / 20.0)
     eps_x, eps_z = family.permittivity(spec.sample, probe, values)
     eps_max = max(float(np.max(np.abs(np.asarray(eps_x)))),
                   float(np.max(np.abs(np.asarray(eps_z)))))
-    return spacing_for(spec.laser.wavelength_m, eps_max)
+    wave = spacing_for(spec.laser.wavelength_m, eps_max)
+    h = wave
+    if probe.path.direction == "x":
+        h = min(h, decay_length(spec.context) / CELLS_PER_DECAY_LENGTH)
+        d = electron_surface_distance(spec, probe)
+        if d:
+            h = min(h, d / CELLS_PER_SURFACE_DISTANCE)
+    return max(h, FINEST_DEFAULT_FRACTION * wave)
 
 
 def laser_footprint_radius(spec: Spec, angle_rad: float) -> float | None:
@@ -215,6 +339,10 @@ def run_fdfd(spec: Spec, grid_step_m: float, *, force: bool = False,
     path = layout.path
     map_x = map_i = map_z = map_zi = spot_z = spot_zi = spot_fraction = None
     if path.direction == "x":
+        g = layout.grid
+        rows = coupling.vacuum_ex_rows(np.asarray(eps_x), np.asarray(eps_z),
+                                       math.floor((path.z_m - g.z0) / g.dz),
+                                       layout.pml_cells_z)
         n_periods = 1
         if path.length_m is not None and layout.period_m:
             n_periods = max(1, int(round(path.length_m / layout.period_m)))
@@ -224,11 +352,11 @@ def run_fdfd(spec: Spec, grid_step_m: float, *, force: bool = False,
             g = layout.grid
             spot = (g.x0 + 0.5 * g.dx + 0.5 * n_periods * layout.period_m, radius)
         integral, _ = coupling.coupling_along_x(fields, path.z_m, v, n_periods=n_periods,
-                                                spot=spot)
+                                                spot=spot, rows=rows)
         if with_map:
             def along(z):
                 return complex(coupling.coupling_along_x(fields, z, v, n_periods=n_periods,
-                                                         spot=spot)[0])
+                                                         spot=spot, rows=rows)[0])
             gap = clear_gap(layout)
             if gap is not None:
                 map_z = np.linspace(gap[0], gap[1], 48)
@@ -387,6 +515,7 @@ def evaluate(spec: Spec, *, grid_step_m: float | None = None, refine: bool | Non
     angle = family.laser_angle(spec.sample, spec.context)
     omega = angular_frequency(spec.laser.wavelength_m)
     refine = spec.solver.refine if refine is None else refine
+    error_info = {}
     fmm_extra = {}
     if method == "fmm":
         from designer import holes
@@ -407,13 +536,18 @@ def evaluate(spec: Spec, *, grid_step_m: float | None = None, refine: bool | Non
         run = run_fdfd(spec, h, force=spec.solver.force)
         rel_error = None
         if refine:
-            say(f"FDFD solve, requested step {1.5 * h * 1e9:.3g} nm (error estimate)")
-            coarse = run_fdfd(spec, 1.5 * h, force=True, with_map=False)
-            ratio = coarse.grid_step_m / run.grid_step_m
-            # both steps can round to the same (minimum) grid: then there is no estimate
-            if abs(run.integral_V) > 0 and ratio > 1.0 + 1e-9:
-                rel_error = (abs(run.integral_V - coarse.integral_V) / (ratio - 1.0)
-                             / abs(run.integral_V))
+            coarse = []
+            for factor in ERROR_GRID_FACTORS:
+                say(f"FDFD solve, requested step {factor * h * 1e9:.3g} nm (error estimate)")
+                coarse.append(run_fdfd(spec, factor * h, force=True, with_map=False))
+            steps = [run.grid_step_m] + [c.grid_step_m for c in coarse]
+            if abs(run.integral_V) > 0 and steps[0] < steps[1] < steps[2]:
+                est = three_grid_estimate([run.integral_V] + [c.integral_V for c in coarse],
+                                          steps)
+                rel_error = est.relative_error
+                error_info = dict(error_order=est.observed_order,
+                                  error_order_used=est.order_used,
+                                  error_grids_m=tuple(steps), error_note=est.note)
         solver = "fdfd"
     layout = run.layout
     eps_inc = complex(layout.eps_incidence)
@@ -435,7 +569,7 @@ def evaluate(spec: Spec, *, grid_step_m: float | None = None, refine: bool | Non
                                   "not computed by the Fourier modal method" if solver == "fmm"
                                   else f"{CORNER_RULE} "
                                   f"({spec.fabrication.corner_radius_m * 1e9:g} nm)"),
-                      **fmm_extra)
+                      **fmm_extra, **error_info)
 
 
 def coupling_figures(ev: Evaluation) -> dict:
@@ -465,6 +599,12 @@ def coupling_figures(ev: Evaluation) -> dict:
         "max_field_in_material_V_per_m": e_max,
         "damage_factor": damage,
         "relative_error_estimate": ev.relative_error,
+        "error_estimate": {"observed_order": ev.error_order,
+                           "order_used": ev.error_order_used,
+                           "grid_steps_m": (list(ev.error_grids_m) if ev.error_grids_m
+                                            else None),
+                           "note": ev.error_note if ev.solver == "fdfd" else
+                           "exact layer-stack solution"},
         "max_field_rule": ev.e_max_rule,
         "classical_max_energy_gain_eV": abs(integral),
     }

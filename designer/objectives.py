@@ -377,10 +377,13 @@ def _fdfd_model(scenario, nominal, keys, x0, bounds, grid_step_m, cache_size=2):
         ex, ez, hy = solver(eps_x, eps_z)
         geo = jnp.asarray(g0) + jnp.asarray(gj) @ (x - x0j)
         if path.direction == "x":
-            t = (geo[0] - grid.z0) / grid.dz
-            k = jnp.clip(jnp.floor(t).astype(int), 0, grid.nz - 2)
-            f = t - k
-            row = (1.0 - f) * jnp.take(ex, k, axis=1) + f * jnp.take(ex, k + 1, axis=1)
+            # Ex at the electron from the vacuum Floquet harmonics of the gap rows (as
+            # evaluate does): smooth in the electron's height, no cell-periodic error
+            k = jnp.floor((geo[0] - grid.z0) / grid.dz).astype(int)
+            rows = coupling.vacuum_ex_rows_traced(jnp.asarray(eps_x), jnp.asarray(eps_z), k,
+                                                  layout.pml_cells_z)
+            row = coupling.gap_row(ex, dx=grid.dx, dz=grid.dz, x0=grid.x0, z0=grid.z0,
+                                   z=geo[0], omega=omega, bloch_kx=kb, rows=rows, xp=jnp)
             i1 = coupling.periodic_cell_integral(row, grid.x0 + 0.5 * grid.dx, grid.dx, kb, q)
             integral = i1 * coupling.lattice_sum(kb - q, layout.period_m, n_periods)
             length = n_periods * layout.period_m if path.length_m is not None else jnp.nan

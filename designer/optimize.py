@@ -11,9 +11,20 @@ The run (designer.design) is a chain of these:
   projection ``u <- clip(u, 0, 1)`` after every step (projected gradient method,
   e.g. J. Nocedal & S. J. Wright, *Numerical Optimization*, 2nd ed. 2006, sec. 16.7),
   and the loss itself sees ``clip(u)`` so that a line search may step outside.
-* Optimizers: Adam (D. P. Kingma & J. Ba, "Adam: a method for stochastic
-  optimization", ICLR 2015) and L-BFGS with a zoom line search (Nocedal & Wright,
-  ch. 7 and 3.5), both from optax.
+* Optimizers (``[optimize] optimizer``):
+  - ``"lbfgsb"`` (default for parametric designs): scipy.optimize's L-BFGS-B, a bounded
+    limited-memory quasi-Newton method with a line search on the unit box (R. H. Byrd,
+    P. Lu, J. Nocedal, C. Zhu, SIAM J. Sci. Comput. 16, 1190, 1995; C. Zhu et al., ACM
+    TOMS 23, 550, 1997).  Its line search accepts a step only with sufficient decrease
+    of the loss, so accepted iterates never lose objective (with no active penalty).
+  - ``"mma"`` (default for free-form densities): the method of moving asymptotes
+    (K. Svanberg, IJNME 24, 359, 1987; the globally convergent variant, SIAM J. Optim.
+    12, 555, 2002) from nlopt (``LD_MMA``), with the coupled constraints as explicit
+    inequality constraints, run stage by stage of the projection continuation.
+  - ``"adam"``: Adam (D. P. Kingma & J. Ba, ICLR 2015) with step control: a step that
+    lowers the objective at a fixed projection sharpness is rejected, the iterate goes
+    back and the step is halved (:func:`controlled_step`); accepted steps grow it again.
+  - ``"lbfgs"``: optax L-BFGS with a zoom line search (Nocedal & Wright, ch. 7 and 3.5).
 * Inequality constraints ``g(x) <= 0`` enter as the quadratic penalty or the
   augmented-Lagrangian term of designer.fabrication (multipliers updated every
   ``al_every`` iterations).
@@ -37,7 +48,9 @@ import optax
 
 jax.config.update("jax_enable_x64", True)
 
-METHODS = ("adam", "lbfgs")
+METHODS = ("lbfgsb", "mma", "adam", "lbfgs")
+PARAMETRIC_DEFAULT = "lbfgsb"
+DENSITY_DEFAULT = "mma"
 CONSTRAINT_METHODS = ("penalty", "augmented_lagrangian")
 
 
@@ -148,6 +161,9 @@ def make_transform(method: str = "adam", learning_rate: float = 0.05,
     if method == "lbfgs":
         search = optax.scale_by_zoom_linesearch(max_linesearch_steps=max_linesearch_steps)
         return optax.lbfgs(memory_size=memory_size, linesearch=search)
+    if method in ("lbfgsb", "mma"):
+        # driven by scipy / nlopt; the optax slot holds an empty state for checkpoints
+        return optax.with_extra_args_support(optax.identity())
     raise ValueError(f"method must be one of {METHODS}, got {method!r}")
 
 
@@ -176,6 +192,32 @@ def make_step(loss: Callable, transform, *, jit: bool = True):
 def make_evaluate(loss: Callable, *, jit: bool = True):
     """``evaluate(u, aux) -> (loss, extras)`` without a gradient."""
     return jax.jit(loss) if jit else loss
+
+
+# ---------------------------------------------------------------------------------
+# step control (Adam)
+# ---------------------------------------------------------------------------------
+class StepControl(NamedTuple):
+    """Step-control constants: shrink on rejection, grow on acceptance, give up below."""
+
+    shrink: float = 0.5
+    grow: float = 1.5
+    smallest: float = 1e-4
+
+
+def controlled_step(loss: float, accepted_loss: float | None, scale: float,
+                    control: StepControl = StepControl(), rtol: float = 1e-12):
+    """``(accept, new_scale)`` for a candidate whose loss is ``loss``.
+
+    The candidate is accepted when there is no accepted point yet or its loss is not
+    above the accepted one (``loss <= accepted + rtol |accepted|``): the step scale then
+    grows (at most to 1); otherwise it is rejected and the scale shrinks.  A classic
+    backtracking safeguard (Nocedal & Wright, *Numerical Optimization*, 2nd ed., sec. 3.1)
+    applied to Adam's steps.
+    """
+    if accepted_loss is None or loss <= accepted_loss + rtol * abs(accepted_loss):
+        return True, min(1.0, scale * control.grow)
+    return False, scale * control.shrink
 
 
 # ---------------------------------------------------------------------------------

@@ -179,6 +179,118 @@ def _interp_rows(arr, coord0, step, z):
     return (1.0 - f) * arr[:, k] + f * arr[:, k + 1]
 
 
+def vacuum_kz(kx, omega, dx, dz, *, xp=np):
+    """``k_z`` of the Yee grid's own plane waves in vacuum for lateral wavenumbers ``kx``.
+
+    ``((2/dz) sin(k_z dz/2))^2 = k0^2 - ((2/dx) sin(k_x dx/2))^2`` (A. Taflove & S. C.
+    Hagness, Computational Electrodynamics, 3rd ed., 2005, ch. 4); branch Im k_z >= 0
+    (Re k_z >= 0 when real).  Evanescent harmonics have ``k_z = i kappa_grid``.
+    """
+    return _order_wavenumbers(1.0, xp.asarray(kx, dtype=float), omega / C0, dx, dz, "grid",
+                              xp)[1]
+
+
+def vacuum_ex_rows(eps_x, eps_z, k, n_pml=0, tol=1e-9):
+    """``(k_lo, k_hi)``: the contiguous Ex rows around row ``k`` on which the grid field
+    is a sum of vacuum Floquet harmonics, or None.
+
+    The discrete Helmholtz equation for Hy row j (cell centres) involves ``eps_x`` on
+    the Ex rows j and j + 1 and ``eps_z`` on row j; where all three are vacuum across
+    the period, each Floquet harmonic of Hy obeys the vacuum three-term recurrence, and
+    so does Ex (a z difference of Hy divided by ``eps_x = 1``).  With [j_a, j_b] the
+    run of such Hy rows containing the electron, Ex rows j_a .. j_b + 1 follow
+    ``a e^{i k_z z} + b e^{-i k_z z}`` exactly.  ``k`` is the Ex row at or below the
+    electron; rows inside the PML (``n_pml`` cells at each end) are excluded.
+    Numpy (host) only; :func:`vacuum_ex_rows_traced` is the JAX counterpart.
+    """
+    ex_ok, ez_ok = (np.all(np.abs(np.asarray(a) - 1.0) < tol, axis=0) for a in (eps_x, eps_z))
+    nz = ex_ok.shape[0]
+    good = np.zeros(nz, dtype=bool)
+    good[:-1] = ex_ok[:-1] & ex_ok[1:] & ez_ok[:-1]
+    good[: n_pml + 1] = False
+    good[max(nz - n_pml - 2, 0):] = False
+    # the electron lies between Ex rows k and k + 1, i.e. in Hy row k; when that row
+    # holds a partly filled cell (the electron closer to a surface than a cell), the
+    # nearest clear run beside it continues the vacuum field (extrapolation)
+    for j in (int(k), int(k) + 1, int(k) - 1, int(k) + 2, int(k) - 2):
+        if 0 <= j < nz and good[j]:
+            break
+    else:
+        return None
+    ja = jb = j
+    while ja - 1 >= 0 and good[ja - 1]:
+        ja -= 1
+    while jb + 1 < nz and good[jb + 1]:
+        jb += 1
+    return ja, jb + 1
+
+
+def vacuum_ex_rows_traced(eps_x, eps_z, k, n_pml=0, tol=1e-9):
+    """:func:`vacuum_ex_rows` for JAX arrays and a traced row index ``k`` (returns
+    ``(k_lo, k_hi)`` as traced integers; when Hy row k is not clear, the clear run just
+    above it, else just below, is used)."""
+    ex_ok = jnp.all(jnp.abs(eps_x - 1.0) < tol, axis=0)
+    ez_ok = jnp.all(jnp.abs(eps_z - 1.0) < tol, axis=0)
+    nz = ex_ok.shape[0]
+    idx = jnp.arange(nz)
+    good = jnp.concatenate([ex_ok[:-1] & ex_ok[1:] & ez_ok[:-1], jnp.zeros(1, bool)])
+    good = good & (idx > n_pml) & (idx < nz - n_pml - 2)
+    bad = ~good
+    k = jnp.clip(k, 1, nz - 2)
+    kk = jnp.where(good[k], k, jnp.where(good[k + 1], k + 1, k - 1))
+    ja = jnp.max(jnp.where(bad & (idx < kk), idx, -1)) + 1
+    jb = jnp.min(jnp.where(bad & (idx > kk), idx, nz)) - 1
+    return ja, jb + 1
+
+
+def _harmonic_weights(kz, z, z1, z2, xp):
+    """Weights ``(w1, w2)`` with ``c(z) = w1 c(z1) + w2 c(z2)`` for every
+    ``c(z) = a e^{i kz z} + b e^{-i kz z}``: ``w1 = sin(kz (z2 - z)) / sin(kz (z2 - z1))``,
+    ``w2 = sin(kz (z - z1)) / sin(kz (z2 - z1))`` (linear weights as kz -> 0)."""
+    kz = xp.asarray(kz, dtype=complex)
+    small = xp.abs(kz * (z2 - z1)) < 1e-6
+    ks = xp.where(small, 1.0, kz)
+    den = xp.sin(ks * (z2 - z1))
+    w1 = xp.where(small, (z2 - z) / (z2 - z1), xp.sin(ks * (z2 - z)) / den)
+    w2 = xp.where(small, (z - z1) / (z2 - z1), xp.sin(ks * (z - z1)) / den)
+    return w1, w2
+
+
+def gap_row(ex, *, dx, dz, x0, z0, z, omega, bloch_kx, rows, xp=None):
+    """Ex along x at height ``z`` inside a vacuum gap, from its Floquet harmonics.
+
+    In vacuum every Floquet harmonic ``m`` of the grid field is exactly
+    ``a_m e^{i k_z,m z} + b_m e^{-i k_z,m z}`` (for the synchronous, evanescent harmonic
+    ``a e^{-kappa z} + b e^{kappa z}``) with ``k_z,m`` on the grid's own dispersion
+    (:func:`vacuum_kz`).  The two Ex rows of the gap nearest ``z`` (inside ``rows =
+    (k_lo, k_hi)``, :func:`vacuum_ex_rows`) fix ``a_m, b_m``; the row at ``z`` is then
+    the sum of the harmonics there.  Linear interpolation across a cell would instead
+    err by ``(kappa dz)^2 / 8`` relative, periodically in the electron's height.
+    Exact (to rounding) for a grid field; outside [k_lo, k_hi] the same form
+    extrapolates, which is still exact while the medium is vacuum.  ``rows`` may be
+    traced integers; ``z`` may be traced.  Returns (nx,) complex.
+    """
+    xp = _resolve(xp, ex, z, omega, bloch_kx)
+    ex = xp.asarray(ex, dtype=complex)
+    nx = ex.shape[0]
+    k_lo, k_hi = rows
+    k = xp.floor((z - z0) / dz).astype(int)
+    k1 = xp.clip(k, k_lo, xp.maximum(k_hi - 1, k_lo))
+    k1 = xp.clip(k1, 0, ex.shape[1] - 2)
+    k2 = k1 + 1
+    z1 = z0 + k1 * dz
+    z2 = z1 + dz
+    xs = x0 + dx * (xp.arange(nx) + 0.5)
+    phase = xp.exp(-1j * bloch_kx * xs)
+    u1 = xp.fft.fft(xp.take(ex, k1, axis=1) * phase)
+    u2 = xp.fft.fft(xp.take(ex, k2, axis=1) * phase)
+    m = xp.asarray(np.fft.fftfreq(nx) * nx)
+    kx = bloch_kx + 2.0 * np.pi * m / (nx * dx)
+    kz = vacuum_kz(kx, omega, dx, dz, xp=xp)
+    w1, w2 = _harmonic_weights(kz, z, z1, z2, xp)
+    return xp.fft.ifft(w1 * u1 + w2 * u2) / phase
+
+
 def periodic_cell_integral(row, x_first, dx, bloch_kx, q, *, xp=None):
     """One-period integral ``int_{x_first}^{x_first+Lambda} F(x) exp(-i q x) dx``.
 
@@ -195,9 +307,14 @@ def periodic_cell_integral(row, x_first, dx, bloch_kx, q, *, xp=None):
     return phase_integral(u, x, q - bloch_kx, xp=xp)
 
 
-def _coupling_x(ex, *, dx, dz, x0, z0, z, omega, bloch_kx, velocity, n_periods, spot, xp):
+def _coupling_x(ex, *, dx, dz, x0, z0, z, omega, bloch_kx, velocity, n_periods, spot, xp,
+                rows=None):
     ex = xp.asarray(ex, dtype=complex)
-    row = _interp_rows(ex, z0, dz, z)
+    if rows is None:
+        row = _interp_rows(ex, z0, dz, z)
+    else:
+        row = gap_row(ex, dx=dx, dz=dz, x0=x0, z0=z0, z=z, omega=omega, bloch_kx=bloch_kx,
+                      rows=rows, xp=xp)
     nx = ex.shape[0]
     period = nx * dx
     x_first = x0 + 0.5 * dx
@@ -211,34 +328,41 @@ def _coupling_x(ex, *, dx, dz, x0, z0, z, omega, bloch_kx, velocity, n_periods, 
     return i1 * lattice_sum(bloch_kx - q, period, n_periods, weights, xp=xp), i1
 
 
-_X_STATIC = ("dx", "dz", "x0", "z0", "z", "n_periods", "spot", "xp")
+_X_STATIC = ("dx", "dz", "x0", "z0", "z", "n_periods", "spot", "xp", "rows")
 _coupling_x_jit = jax.jit(_coupling_x, static_argnames=_X_STATIC)
 
 
 def coupling_x_kernel(ex, *, dx, dz, x0, z0, z, omega, bloch_kx, velocity, n_periods=1,
-                      spot=None, xp=None):
+                      spot=None, xp=None, rows=None):
     """Kernel of :func:`coupling_along_x` on a bare ``ex`` array (Yee positions:
     x = x0 + (i + 1/2) dx, z = z0 + k dz).  ``z`` and the grid numbers are static
     (Python numbers).  ``xp``: array namespace, inferred from ``ex``, ``omega``,
     ``bloch_kx`` and ``velocity`` when None; the jax.numpy path is jit-compiled (one
     compilation per grid and height).
 
+    ``rows = (k_lo, k_hi)``: the electron is in a vacuum gap whose Ex rows k_lo..k_hi
+    hold vacuum Floquet harmonics (:func:`vacuum_ex_rows`); the row at ``z`` is then
+    built from them (:func:`gap_row`) instead of interpolated linearly.
+
     Returns ``(I_total, I_one_period)``; the path starts at the first Ex sample
     ``x0 + dx/2``.
     """
     xp = _resolve(xp, ex, omega, bloch_kx, velocity)
     kw = dict(dx=dx, dz=dz, x0=x0, z0=z0, z=z, omega=omega, bloch_kx=bloch_kx,
-              velocity=velocity, n_periods=n_periods, spot=spot)
+              velocity=velocity, n_periods=n_periods, spot=spot,
+              rows=None if rows is None else (int(rows[0]), int(rows[1])))
     if xp is np:
         return _coupling_x(ex, xp=np, **kw)
     return _coupling_x_jit(ex, xp=jnp, **kw)
 
 
-def coupling_along_x(fields, z, velocity, n_periods=1, spot=None, *, xp=None):
+def coupling_along_x(fields, z, velocity, n_periods=1, spot=None, *, xp=None, rows=None):
     """Coupling of an electron moving along +x at height ``z`` over ``n_periods`` periods.
 
     ``I = I_1 sum_{n<N} exp(i (k_b - w/v) n Lambda)``, ``I_1`` the one-period integral of
-    Ex (interpolated linearly between the Ex rows) starting at ``x0 + dx/2``.
+    Ex starting at ``x0 + dx/2``; Ex at height z is built from the vacuum Floquet
+    harmonics of the gap rows ``rows`` (:func:`gap_row`), or, without ``rows``,
+    interpolated linearly between the Ex rows.
     ``spot = (x_centre, radius)`` applies a laser field envelope
     ``exp(-(x - x_c)^2 / radius^2)`` (radius = 1/e^2 intensity radius) period by period.
     Checking that the path does not cross material is the caller's job.  Runs in numpy
@@ -249,7 +373,8 @@ def coupling_along_x(fields, z, velocity, n_periods=1, spot=None, *, xp=None):
     g = fields.grid
     return coupling_x_kernel(fields.ex, dx=g.dx, dz=g.dz, x0=g.x0, z0=g.z0, z=z,
                              omega=fields.omega, bloch_kx=fields.bloch_kx,
-                             velocity=velocity, n_periods=n_periods, spot=spot, xp=xp)
+                             velocity=velocity, n_periods=n_periods, spot=spot, xp=xp,
+                             rows=rows)
 
 
 # --------------------------------------------------------------------------- open path along z

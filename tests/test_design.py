@@ -348,8 +348,9 @@ def test_field_cap_in_material_is_respected(tmp_path):
     from designer.evaluate import coupling_figures
 
     def run(extra, name):
-        spec = load_spec(write(tmp_path, GRATING.format(objective="coupling", iterations=12,
-                                                        starts=1, extra=extra), name))
+        text = GRATING.replace('method = "adam"', 'optimizer = "lbfgsb"')
+        spec = load_spec(write(tmp_path, text.format(objective="coupling", iterations=12,
+                                                     starts=1, extra=extra), name))
         result = d.run_design(spec, tmp_path / name.replace(".toml", ""),
                               d.parse_optimize(spec), progress=False)
         best = result.problem.design_params(result.best_u)
@@ -361,7 +362,7 @@ def test_field_cap_in_material_is_respected(tmp_path):
     start_fig = coupling_figures(evaluate(load_spec(tmp_path / "free.toml"), refine=False))
     e_start = start_fig["max_field_in_material_V_per_m"]
     e_free = free_fig["max_field_in_material_V_per_m"]
-    assert e_free > 1.04 * e_start          # the unconstrained optimum raises the field
+    assert e_free > 1.02 * e_start          # the unconstrained optimum raises the field
     cap = 0.5 * (e_start + e_free)
     capped, capped_fig = run(f"max_field_V_per_m = {cap!r}", "capped.toml")
     assert capped_fig["max_field_in_material_V_per_m"] <= cap * (1 + 1e-3)
