@@ -230,8 +230,8 @@ def default_grid_step(spec: Spec, values: dict | None = None) -> float:
     nanometre from a surface must not make the default grid explode; give
     ``[solver] grid_step_nm`` for more).
     """
-    from solvers.fdfd import spacing_for
     from designer.families.base import decay_length
+    from solvers.fdfd import spacing_for
 
     family = get_family(spec.family)
     probe = family.layout(spec.sample, spec.context, spec.laser.wavelength_m / 20.0)

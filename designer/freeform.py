@@ -220,7 +220,8 @@ def robust_triple(rho_tilde: jnp.ndarray, beta, delta_eta: float) -> jnp.ndarray
     features of the nominal design survive erosion and its gaps survive dilation,
     which imposes the minimum lengths of :func:`robust_length_scale`.
     """
-    return jnp.stack([threshold_projection(rho_tilde, beta, eta) for eta in robust_thresholds(delta_eta)])
+    return jnp.stack([threshold_projection(rho_tilde, beta, eta)
+                      for eta in robust_thresholds(delta_eta)])
 
 
 def robust_length_scale(radius_m: float, delta_eta: float, *, kernel: str = "2d") -> float:

@@ -165,8 +165,7 @@ def _preview(path: Path, spec, settings) -> None:
 
 def export_holes(args, spec, out: Path, preview: Path | None, fmt: str) -> int:
     """The export of a hole membrane (called by ``designer.export.export_command``)."""
-    from designer.export import (DesignRuleError, _atomic, parse_layout,
-                                 provenance_items)
+    from designer.export import DesignRuleError, _atomic, parse_layout, provenance_items
 
     if spec.layout.get("tone", "remove") != "remove":
         raise SpecError(spec.source, "layout.tone", 'a hole lattice is drawn as the holes '

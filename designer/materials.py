@@ -200,7 +200,7 @@ class Tabulated:
         lam_c = np.clip(lam, x[0], x[-1])
         if self.interpolation == "linear" or x.size == 2:
             return np.interp(lam_c, x, y)
-        from scipy.interpolate import PchipInterpolator   # only tables need it (start-up)
+        from scipy.interpolate import PchipInterpolator  # only tables need it (start-up)
 
         return PchipInterpolator(x, y)(lam_c)
 

@@ -344,7 +344,8 @@ def evaluation_figure(ev) -> Figure:
 
 _KEY_WORDS = {
     "beam.voltage_kV": "beam voltage", "laser.wavelength_nm": "laser wavelength",
-    "laser.angle_deg": "laser angle of incidence", "path.offset_nm": "electron height above the surface",
+    "laser.angle_deg": "laser angle of incidence",
+    "path.offset_nm": "electron height above the surface",
     "path.length_um": "interaction length", "path.x_nm": "electron position x",
     "sample.thickness_nm": "film thickness", "sample.period_nm": "period",
     "sample.duty_cycle": "duty cycle", "sample.tooth_height_nm": "tooth height",

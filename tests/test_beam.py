@@ -11,8 +11,8 @@ from designer import beam
 KV = 1e3
 
 
-# Values computed from the relativistic formulas with CODATA constants, as listed in
-# computed from the formulas with CODATA constants (scipy.constants): beta and de Broglie wavelength (pm).
+# Values computed from the relativistic formulas with CODATA constants (scipy.constants):
+# beta and de Broglie wavelength (pm).
 @pytest.mark.parametrize(
     "voltage_kV, beta, wavelength_pm",
     [(30, 0.32838, 6.979), (100, 0.54822, 3.7014), (200, 0.69531, 2.5079),
@@ -66,7 +66,8 @@ def test_electron_rejects_bad_voltage(bad):
 
 
 def test_synchronous_period():
-    # computed from the formula with CODATA constants: 28 kV, 800 nm, third spatial harmonic -> 763.5 nm
+    # computed from the formula with CODATA constants: 28 kV, 800 nm, third spatial
+    # harmonic -> 763.5 nm
     b = beam.beta_from_voltage(28 * KV)
     assert beam.synchronous_period(b, 800e-9, order=3) * 1e9 == pytest.approx(763.5, abs=0.05)
     with pytest.raises(ValueError):
@@ -98,7 +99,8 @@ def test_evanescent_decay_from_dispersion_relation():
 
 
 def test_smith_purcell():
-    # S. J. Smith & E. M. Purcell, Phys. Rev. 92, 1069 (1953); computed from the formula with CODATA constants:
+    # S. J. Smith & E. M. Purcell, Phys. Rev. 92, 1069 (1953); computed from the formula
+    # with CODATA constants:
     # 30 kV, period 500 nm, observed at 90 deg -> 1522.6 nm
     b = beam.beta_from_voltage(30 * KV)
     lam = beam.smith_purcell_wavelength(500e-9, b, math.radians(90))
@@ -115,7 +117,8 @@ def test_smith_purcell_is_grating_equation():
 
 
 def test_cherenkov_angle_silicon_nitride():
-    # computed from the formula with CODATA constants: n = 2.0244 (Si3N4 at 800 nm), 200 kV -> 44.72 deg.
+    # computed from the formula with CODATA constants: n = 2.0244 (Si3N4 at 800 nm),
+    # 200 kV -> 44.72 deg.
     # Recomputed here by hand from arccos(1/(n beta)) with beta = 0.695314: 44.7299 deg,
     # i.e. 44.73 when rounded (a rounded value quoted elsewhere), hence the 0.01 deg tolerance.
     b = beam.beta_from_voltage(200 * KV)

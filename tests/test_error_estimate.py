@@ -14,11 +14,15 @@ Spec values are scenarios of our own.
 
 import copy
 
-import numpy as np
 import pytest
 
-from designer.evaluate import (evaluate, evaluation_json, observed_order, run_fdfd,
-                               three_grid_estimate)
+from designer.evaluate import (
+    evaluate,
+    evaluation_json,
+    observed_order,
+    run_fdfd,
+    three_grid_estimate,
+)
 from designer.spec import parse_spec
 
 FILM = {"beam": {"voltage_kV": 200.0}, "laser": {"wavelength_nm": 800.0, "angle_deg": 35.0},

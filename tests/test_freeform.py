@@ -73,7 +73,8 @@ def test_projection_limits():
         np.testing.assert_array_equal(ff.threshold_projection(x, math.inf, eta)[far], step[far])
     assert float(ff.threshold_projection(jnp.array(0.5), math.inf, 0.5)) == 0.5
     # symmetry about eta = 1/2: rho_bar(1 - x) = 1 - rho_bar(x)
-    np.testing.assert_allclose(ff.threshold_projection(1 - x, 5.0), 1 - ff.threshold_projection(x, 5.0), atol=1e-14)
+    np.testing.assert_allclose(ff.threshold_projection(1 - x, 5.0),
+                               1 - ff.threshold_projection(x, 5.0), atol=1e-14)
 
 
 def test_beta_schedule_doubles_and_saturates():

@@ -13,7 +13,6 @@ import pytest
 from designer.hole_export import hole_polygon, polygon_sides
 
 
-
 def _spec(tmp_path, *, lattice="square", period=400.0, radius=100.0, field=20.0,
           fabrication="", name="h.toml"):
     p = tmp_path / name

@@ -118,7 +118,8 @@ def test_variables_and_replace_round_trip():
 @pytest.mark.parametrize("kw, key, word", [
     (dict(sample={"hole_radius_nm": 260.0}), "sample.hole_radius_nm", "overlap"),
     (dict(sample={"lattice": "triangular"}), "sample.lattice", "triangular"),
-    (dict(sample={"hole_axes_nm": [100.0], "hole_radius_nm": None}), "sample.hole_axes_nm", "two positive"),
+    (dict(sample={"hole_axes_nm": [100.0], "hole_radius_nm": None}), "sample.hole_axes_nm",
+     "two positive"),
     (dict(sample={"hole_angle_deg": 10.0}), "sample.hole_angle_deg", "ellipses"),
     (dict(sample={"layers": [{"material": {"n": 1.5}, "thickness_nm": -3.0}]}),
      "sample.layers.0.thickness_nm", "-3.0"),

@@ -52,7 +52,8 @@ def test_half_space_fresnel(theta_deg):
 
 
 def test_brewster_and_normal_reflectance():
-    # computed from the formula with CODATA constants: fused silica at 800 nm, R(0) = 0.0341, Brewster 55.47 deg.
+    # computed from the Fresnel formula: fused silica at 800 nm, R(0) = 0.0341,
+    # Brewster 55.47 deg.
     n = 1.45332
     s0 = L.solve_plane_wave([1.0, n**2], [0.0], OMEGA, 0.0)
     assert abs(float(L.reflectance_transmittance(s0)[0]) - 0.0341) < 5e-5
@@ -254,7 +255,8 @@ def test_gradients_match_finite_differences():
 
 
 def test_prism_phase_matching_and_decay():
-    # computed from the formula with CODATA constants: Si3N4 n = 2.02416 at 800 nm, 200 kV: Cherenkov angle
+    # computed from the formulas with CODATA constants: Si3N4 n = 2.02416 at 800 nm,
+    # 200 kV: Cherenkov angle
     # 44.72 deg from the electron direction (incidence 45.28 deg from the normal), and
     # the synchronous evanescent decay length beta gamma lambda / 2 pi = 123.2 nm.
     n = 2.02416

@@ -22,7 +22,7 @@ def n_at(name, wavelength_nm):
     return resolve_material(name).index(wavelength_nm * NM).real
 
 
-# Published Sellmeier coefficients evaluated by hand (computed from the formulas with CODATA constants):
+# Published Sellmeier coefficients evaluated by hand from the published formulas:
 @pytest.mark.parametrize(
     "name, wavelength_nm, n",
     [

@@ -16,7 +16,7 @@ OMEGA = 2 * np.pi * sc.c / LAM
 def test_sum_rules(beta):
     # sum J_l(x)^2 = 1, sum l J_l^2 = 0, sum l^2 J_l(x)^2 = x^2/2 (Neumann's addition
     # theorem; Abramowitz & Stegun 9.1.76 and its derivatives -- numbers from memory),
-    # with x = 2|beta|: sum l^2 P_l = 2|beta|^2 (identity of Bessel functions, Abramowitz & Stegun 9.1.27 and 9.1.76).
+    # with x = 2|beta|: sum l^2 P_l = 2|beta|^2.
     orders, p = S.sideband_probabilities(beta)
     assert abs(p.sum() - 1) < 1e-13
     assert abs(np.sum(orders * p)) < 1e-12

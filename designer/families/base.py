@@ -183,7 +183,8 @@ def material_with_eps(ref: MaterialRef, eps: complex) -> MaterialRef:
 def decay_length(ctx: SampleContext) -> float:
     """Evanescent decay length of the synchronous field, 1/kappa = beta gamma lambda/2pi.
 
-    Source: the standard synchronous-harmonic result (Lambda = m beta lambda; e.g. R. J. England et al., Rev. Mod. Phys. 86, 1337, 2014).
+    Source: the standard synchronous-harmonic result (Lambda = m beta lambda; e.g.
+    R. J. England et al., Rev. Mod. Phys. 86, 1337, 2014).
     """
     return ctx.beta * ctx.gamma * ctx.wavelength_m / (2.0 * math.pi)
 

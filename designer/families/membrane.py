@@ -453,7 +453,7 @@ def hole_chords(h: HoleLattice, y_m: float) -> list[tuple[float, float]]:
     along x (a1), from the holes of the nearby lattice rows; overlapping chords merged."""
     a, b = h.semi_axes_m
     c, s = math.cos(h.angle_rad), math.sin(h.angle_rad)
-    (a1x, _), (a2x, a2y) = h.a1, h.a2
+    (a2x, a2y) = h.a2
     P = h.period_m
     out = []
     for j in range(-3, 4):

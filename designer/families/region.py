@@ -36,12 +36,12 @@ there (the fill fraction of each cell by the family's pieces).
 
 The design pixels are the FDFD cells whose centres lie in the region
 (designer.freeform.region_cells).  What a spec *evaluates* is the density placed as
-it is, binarized at 0.5 (``freeform.threshold_projection`` with ``beta = inf``, no filter; a value of
-exactly 0.5 stays half way).  A design run stores its final pattern already filtered
-and projected (0 or 1 per pixel), so ``velomatch evaluate DIR/design.toml`` places
+it is, binarized at 0.5 (``freeform.threshold_projection`` with ``beta = inf``, no
+filter; a value of exactly 0.5 stays half way).  A design run stores its final pattern
+already filtered and projected (0 or 1 per pixel), so ``velomatch evaluate DIR/design.toml`` places
 exactly the pattern the optimizer evaluated last.
 
-Resolution: a stored density belongs to the grid it was computed on (``pixel_nm``,
+Grid step: a stored density belongs to the grid it was computed on (``pixel_nm``,
 ``origin_nm``).  On that grid it is placed pixel for pixel; on any other grid (the
 error estimate at 1.5 h, a refined re-evaluation) every cell takes the value of the
 stored pixel its centre falls in (nearest-neighbour resampling), so nothing is refused

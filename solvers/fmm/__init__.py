@@ -16,12 +16,28 @@ Conventions are in the docstrings of :mod:`.solve` (geometry, incidence, polariz
 :mod:`.coupling` (the closed-form coupling integral).
 """
 
-from .coupling import (SpotCoupling, coupling_integral, default_z_ref, harmonic_couplings,
-                       spot_averaged_coupling)
+from .coupling import (
+                       SpotCoupling,
+                       coupling_integral,
+                       default_z_ref,
+                       harmonic_couplings,
+                       spot_averaged_coupling,
+)
 from .eig import eig
-from .geometry import (Circle, Ellipse, Lattice, PatternedLayer, Slit, UniformLayer,
-                       airy_amplitude, bessel_j, bessel_j1, harmonic_indices,
-                       hexagonal_lattice, square_lattice)
+from .geometry import (
+                       Circle,
+                       Ellipse,
+                       Lattice,
+                       PatternedLayer,
+                       Slit,
+                       UniformLayer,
+                       airy_amplitude,
+                       bessel_j,
+                       bessel_j1,
+                       harmonic_indices,
+                       hexagonal_lattice,
+                       square_lattice,
+)
 from .modes import LayerModes
 from .solve import FMMSolution, solve
 

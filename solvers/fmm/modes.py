@@ -44,8 +44,12 @@ import jax
 import jax.numpy as jnp
 
 from .eig import eig
-from .geometry import (PatternedLayer, convolution_matrix, normal_field_matrices,
-                       permittivity_coefficients)
+from .geometry import (
+    PatternedLayer,
+    convolution_matrix,
+    normal_field_matrices,
+    permittivity_coefficients,
+)
 
 FACTORIZATIONS = ("normal", "laurent")
 

@@ -34,7 +34,7 @@ import jax.numpy as jnp
 import numpy as np
 
 from . import smatrix as sm
-from .geometry import Lattice, PatternedLayer, UniformLayer, harmonic_indices, _orders_pair
+from .geometry import Lattice, PatternedLayer, UniformLayer, _orders_pair, harmonic_indices
 from .modes import FACTORIZATIONS, LayerModes, patterned_matrices, patterned_modes, uniform_modes
 
 jax.config.update("jax_enable_x64", True)

@@ -9,7 +9,8 @@ it along the normal 100 nm from a hole centre.  Measured:
 * ``value_and_grad_over_value``: time of |beta_c| with its gradient w.r.t. hole radius,
   period, thickness and incidence angle, over the time of |beta_c| alone;
 * ``map_points``, ``map_s``: an angle x wavelength map of |beta_c| (``jax.lax.map`` over
-  the points, one compilation); 41 x 41 without ``--quick``, 5 x 5 with it (then ``map_41x41_estimate_s`` scales the measured time);
+  the points, one compilation); 41 x 41 without ``--quick``, 5 x 5 with it (then
+  ``map_41x41_estimate_s`` scales the measured time);
 * ``convergence``: |beta_c| and R against the order count N (``(2N + 1)^2`` harmonics).
 
     python studies/benchmarks/fmm.py --quick     # a few minutes on 2 busy cores

@@ -76,10 +76,11 @@ def main(argv=None) -> dict:
             grating["sample"]["electron"]["height_above_surface_m"],
         "out": out,
     }
-    print(f"50 nm film:   |beta_c| per field {summary['film_50nm_beta_c_per_field_m_per_V']:.4g} m/V")
-    print(f"120 nm film:  |beta_c| per field {summary['film_120nm_beta_c_per_field_m_per_V']:.4g} m/V")
+    per_field = "|beta_c| per field"
+    print(f"50 nm film:   {per_field} {summary['film_50nm_beta_c_per_field_m_per_V']:.4g} m/V")
+    print(f"120 nm film:  {per_field} {summary['film_120nm_beta_c_per_field_m_per_V']:.4g} m/V")
     print(f"best thickness of the scan (20 to 300 nm): {summary['best_thickness_nm']:g} nm")
-    print(f"grating:      |beta_c| per field {summary['grating_beta_c_per_field_m_per_V']:.4g} m/V, "
+    print(f"grating:      {per_field} {summary['grating_beta_c_per_field_m_per_V']:.4g} m/V, "
           f"electron {summary['grating_electron_height_above_teeth_m'] * 1e9:.4g} nm above "
           "the teeth (default: half a decay length)")
     print(f"pictures and the sweep are in {out}")
