@@ -954,13 +954,7 @@ def _run_optax(problem: DesignProblem, st: StartState, *, checkpoint: Callable[[
         if (k + 1) % cfg.al_every == 0:
             st.multipliers = opt.update_multipliers(np.asarray(extras[2]), st.multipliers,
                                                     penalty)
-        if bar is not None:
-            bar.update(1)
-            bar.set_postfix(objective=f"{float(extras[0]):.4g}")
-        if (k + 1) % cfg.checkpoint_every == 0:
-            checkpoint()
-        if on_iteration is not None:
-            on_iteration(st)
+        _after_record(problem, st, k, extras, bar, checkpoint, on_iteration)
 
 
 def _state_json(st: StartState) -> dict:

@@ -556,9 +556,19 @@ def make_library(drawing: Drawing, s: LayoutSettings, items: dict, fmt: str):
     for _purpose, layer, datatype, polys in drawing.shapes:
         for p in polys:
             cell.add(gdstk.Polygon(np.asarray(p) * scale, layer=layer, datatype=datatype))
-    lab = gdstk.Label(provenance_text(items), (drawing.info_at[0] * scale,
-                                               drawing.info_at[1] * scale),
-                      anchor="sw", layer=drawing.info_layer[0], texttype=drawing.info_layer[1])
+    add_provenance(lib, cell, items, fmt, (drawing.info_at[0] * scale,
+                                           drawing.info_at[1] * scale), drawing.info_layer)
+    return lib
+
+
+def add_provenance(lib, cell, items: dict, fmt: str, at, layer) -> None:
+    """The provenance label (text, with the spec hash, version and date as GDSII
+    properties) at ``at`` on ``layer = (layer, texttype)``; OASIS files also carry them
+    as library properties."""
+    import gdstk
+
+    lab = gdstk.Label(provenance_text(items), at, anchor="sw", layer=layer[0],
+                      texttype=layer[1])
     lab.set_gds_property(1, items["spec_sha256"])
     lab.set_gds_property(2, items["version"])
     lab.set_gds_property(3, items["date"])
@@ -567,7 +577,6 @@ def make_library(drawing: Drawing, s: LayoutSettings, items: dict, fmt: str):
         lib.set_property("velomatch_spec_sha256", items["spec_sha256"])
         lib.set_property("velomatch_version", items["version"])
         lib.set_property("velomatch_date", items["date"])
-    return lib
 
 
 def _atomic(path: Path, write) -> None:

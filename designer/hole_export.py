@@ -103,7 +103,7 @@ def make_hole_library(spec, settings, items: dict, fmt: str):
     """gdstk Library: the hole cell and a top cell of array references."""
     import gdstk
 
-    from designer.export import _USER_UNIT_M, provenance_text
+    from designer.export import _USER_UNIT_M, add_provenance
 
     h = spec.sample.holes
     um = 1.0 / _USER_UNIT_M
@@ -118,16 +118,7 @@ def make_hole_library(spec, settings, items: dict, fmt: str):
                                 rows=rows, spacing=(pitch[0] * um, pitch[1] * um)))
     fx, fy = settings.field_m
     info = settings.layer_of("info")
-    lab = gdstk.Label(provenance_text(items), (-0.5 * fx * um, -0.5 * fy * um - 1.0),
-                      anchor="sw", layer=info[0], texttype=info[1])
-    lab.set_gds_property(1, items["spec_sha256"])
-    lab.set_gds_property(2, items["version"])
-    lab.set_gds_property(3, items["date"])
-    top.add(lab)
-    if fmt == "oasis":
-        lib.set_property("velomatch_spec_sha256", items["spec_sha256"])
-        lib.set_property("velomatch_version", items["version"])
-        lib.set_property("velomatch_date", items["date"])
+    add_provenance(lib, top, items, fmt, (-0.5 * fx * um, -0.5 * fy * um - 1.0), info)
     return lib
 
 
