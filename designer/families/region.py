@@ -43,7 +43,7 @@ exactly the pattern the optimizer evaluated last.
 
 Grid step: a stored density belongs to the grid it was computed on (``pixel_nm``,
 ``origin_nm``).  On that grid it is placed pixel for pixel; on any other grid (the
-error estimate at 1.5 h, a refined re-evaluation) every cell takes the value of the
+error-estimate grids, a refined re-evaluation) every cell takes the value of the
 stored pixel its centre falls in (nearest-neighbour resampling), so nothing is refused
 but a resampled pattern is only as good as the coarser of the two grids.
 """
