@@ -40,11 +40,16 @@ runs (the continuation changes the loss on purpose): they run their iteration bu
 Outputs in the folder ``--out DIR`` (never reused unless ``--overwrite`` or
 ``--resume``): ``design.toml`` (the optimized design, a complete spec),
 ``evaluation.json`` (``velomatch evaluate design.toml`` reproduces it),
-``refined.json`` (the design at a finer step, with its error estimate),
-``design.png`` (design and fields), ``history.json`` and ``convergence.png``,
-``comparison.json`` / ``comparison.txt`` (start vs optimized) and
+``refined.json`` / ``start_refined.json`` (the design and its start at one finer step,
+with their error estimates), ``design.png`` (design and fields), ``history.json`` and
+``convergence.png``, ``comparison.json`` / ``comparison.txt`` (start vs optimized: the
+start check, every figure with its error, each gain with the combined error) and
 ``checkpoint.json`` (written every ``checkpoint_every`` iterations; ``--resume``
 continues from it, bit-exactly).
+
+A start outside the rules (:func:`start_check`: the design-rule check of the spec's own
+start, and variables outside their bounds) is reported before the run and continues
+from the start moved inside the bounds; the comparison says which start it shows.
 """
 
 from __future__ import annotations
@@ -1593,17 +1598,24 @@ def start_spec(spec: Spec, check: dict) -> Spec:
     return parse_spec(design_raw(spec, params), source=spec.source, base_dir=spec.base_dir)
 
 
-def refined_evaluation(spec: Spec, ev, fine_step_m: float | None, factor: float, what: str,
-                       say) -> dict:
+def refined_evaluation(spec: Spec, ev, coarse: dict, fine_step_m: float | None, factor: float,
+                       what: str, say) -> dict:
     """The evaluation JSON of ``spec`` at the finer step with its error estimate (FDFD:
-    three grids; Fourier modal: N against N + 2 orders; layer stacks: exact, ``ev``)."""
+    three grids; Fourier modal: N against N + 2 orders; layer stacks: exact, ``ev``, whose
+    evaluation JSON is ``coarse``).
+
+    Its ``design_rules`` are those of ``coarse`` (the design's own grid): a free-form
+    pattern is made for that grid, and resampling it onto a finer one may tilt column
+    edges that are straight on its own."""
     from designer.evaluate import evaluate, evaluation_json
 
     if ev.solver == "fdfd":
         say(f"re-evaluating the {what} design at {fine_step_m * 1e9:.3g} nm with the error "
             "estimate (three grids)")
-        out = vio.require_finite(evaluation_json(evaluate(spec, grid_step_m=fine_step_m,
-                                                          refine=True, progress=say)))
+        out = evaluation_json(evaluate(spec, grid_step_m=fine_step_m, refine=True,
+                                       progress=say))
+        out["design_rules"] = coarse["design_rules"]
+        out = vio.require_finite(out)
         out["note"] = (f"step {fine_step_m:.4g} m = the finer of the start's and the design's "
                        f"evaluation steps / {factor:g}; relative_error_estimate from solves at "
                        "about 1.5x and 2.25x that step (three-grid Richardson with the "
@@ -1613,7 +1625,7 @@ def refined_evaluation(spec: Spec, ev, fine_step_m: float | None, factor: float,
         out = vio.require_finite(evaluation_json(evaluate(spec, refine=True, progress=say)))
         out["note"] = "Fourier modal method: relative_error_estimate compares N with N + 2 orders"
     else:
-        out = vio.require_finite(evaluation_json(ev))
+        out = dict(coarse)
         out["note"] = "exact layer-stack solution: no finer grid exists (error 0)"
     return out
 
@@ -1664,11 +1676,11 @@ def write_outputs(result: DesignResult, out_dir: str | Path, *, status=None) -> 
     # three-grid error estimate
     steps = [e.run.grid_step_m for e in (ev, start_ev) if e.run.grid_step_m]
     fine = min(steps) / p.config.refine_factor if steps else None
-    refined = refined_evaluation(design_spec, ev, fine, p.config.refine_factor, "optimized",
-                                 say)
+    refined = refined_evaluation(design_spec, ev, design_eval, fine, p.config.refine_factor,
+                                 "optimized", say)
     vio.write_json(out / "refined.json", refined)
-    start_refined = refined_evaluation(begin, start_ev, fine, p.config.refine_factor,
-                                       "start", say)
+    start_refined = refined_evaluation(begin, start_ev, start_eval, fine,
+                                       p.config.refine_factor, "start", say)
     vio.write_json(out / "start_refined.json", start_refined)
     errors = refined_comparison(start_refined, start_eval, refined, design_eval,
                                 p.config.objective)
