@@ -565,13 +565,16 @@ def evaluate(spec: Spec, *, grid_step_m: float | None = None, refine: bool | Non
     else:
         bottom, top = layout.structure_z_m
         gradient_length = open_path_length(spec, angle, max(top - bottom, 0.0))
+    if solver == "layers":
+        e_max_rule = "planar stack: no corners"
+    elif solver == "fmm":
+        e_max_rule = holes_e_max_rule(spec, fmm_extra["fourier_orders"])
+    else:
+        e_max_rule = f"{CORNER_RULE} ({spec.fabrication.corner_radius_m * 1e9:g} nm)"
     return Evaluation(spec=spec, solver=solver, angle_rad=angle, peak_field_V_per_m=e0,
                       omega=omega, run=run, relative_error=rel_error,
                       interaction_length_m=interaction, gradient_length_m=gradient_length,
-                      e_max_rule=("planar stack: no corners" if solver == "layers" else
-                                  holes_e_max_rule(spec, fmm_extra["fourier_orders"]) if solver == "fmm"
-                                  else f"{CORNER_RULE} "
-                                  f"({spec.fabrication.corner_radius_m * 1e9:g} nm)"),
+                      e_max_rule=e_max_rule,
                       **fmm_extra, **error_info)
 
 

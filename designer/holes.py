@@ -332,12 +332,11 @@ def cell_points(spec, sol, samples: int = E_MAX_SAMPLES):
 def max_field_in_material(spec, sol, orders: int) -> float | None:
     """Largest |E| (per V/m incident) in the material of the stack, sampled on
     ``E_MAX_SAMPLES^2`` lateral points x ``E_MAX_PLANES_PER_WAVELENGTH`` heights per
-    wavelength in the medium, in every layer with eps != 1 and in a material half-space below down to one wavelength; points
-    within :func:`edge_band_m` of a hole wall (or, in the neighbouring layers, of its
-    rim) are left out.  None when no material point remains."""
-    from solvers.fmm.fields import field_magnitude, medium_bounds
-
+    wavelength in the medium, in every layer with eps != 1 and in a material half-space
+    below down to one wavelength; points within :func:`edge_band_m` of a hole wall (or,
+    in the neighbouring layers, of its rim) are left out.  None when no material point remains."""
     from designer.families.membrane import stack_layers
+    from solvers.fmm.fields import field_magnitude, medium_bounds
 
     x, y = cell_points(spec, sol)
     band = edge_band_m(spec, orders)
