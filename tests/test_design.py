@@ -91,6 +91,20 @@ def membrane(tmp_path, *, thickness=45.0, lo=40.0, hi=140.0, iterations=40, star
                                            method=method, extra=extra), name)
 
 
+def design_cli(path, out):
+    """``velomatch design PATH --out OUT`` through the command line, with the handler
+    called directly; returns the exit code."""
+    from designer import commands
+    from designer.cli import main
+
+    orig = commands.run_design
+    commands.run_design = d.design_command
+    try:
+        return main(["design", str(path), "--out", str(out)])
+    finally:
+        commands.run_design = orig
+
+
 def scan_coupling(spec, t_lo_nm, t_hi_nm, n=2001):
     """|beta_c|/E0 of the film vs thickness, straight from the transfer-matrix solver."""
     eps = spec.sample.material.eps
@@ -238,19 +252,12 @@ def test_same_seed_same_result_and_resume_matches(tmp_path):
 
 def test_outputs_reproduce_under_evaluate(tmp_path):
     spec_path = membrane(tmp_path, thickness=100.0, lo=40.0, hi=140.0, iterations=8)
-    from designer import commands
-    from designer.cli import main
-
-    orig = getattr(commands, "run_design")
-    commands.run_design = d.design_command
-    try:
-        assert main(["design", str(spec_path), "--out", str(tmp_path / "out")]) == 0
-        # an existing non-empty folder is never reused unless asked
-        assert main(["design", str(spec_path), "--out", str(tmp_path / "out")]) == 2
-    finally:
-        commands.run_design = orig
+    assert design_cli(spec_path, tmp_path / "out") == 0
+    # an existing non-empty folder is never reused unless asked
+    assert design_cli(spec_path, tmp_path / "out") == 2
     out = tmp_path / "out"
-    for name in ("design.toml", "evaluation.json", "refined.json", "design.png",
+    for name in ("design.toml", "evaluation.json", "refined.json", "start_refined.json",
+                 "design.png",
                  "history.json", "convergence.png", "comparison.json", "comparison.txt",
                  "checkpoint.json", "report.html"):
         assert (out / name).exists(), name
@@ -380,17 +387,9 @@ def test_start_outside_the_rules_is_reported_then_moved(tmp_path, capsys):
     # film: compared with the transfer-matrix solution of a 60 nm film computed
     # directly (Born & Wolf, see the module docstring).  Layer stacks are exact, so a
     # gain of several per cent is far outside the (zero) error and gives no warning.
-    from designer import commands
-    from designer.cli import main
-
     path = membrane(tmp_path, thickness=45.0, lo=40.0, hi=140.0, iterations=3,
                     extra="[fabrication]\nthickness_nm = [60.0, 140.0]")
-    orig = commands.run_design
-    commands.run_design = d.design_command
-    try:
-        assert main(["design", str(path), "--out", str(tmp_path / "out")]) == 0
-    finally:
-        commands.run_design = orig
+    assert design_cli(path, tmp_path / "out") == 0
     captured = capsys.readouterr()
     assert "the spec's own start is outside the rules" in captured.err
     assert "sample.thickness_nm = 45 is outside its bounds [60, 140]" in captured.err
@@ -481,38 +480,11 @@ def test_a_run_that_cannot_move_warns_that_its_gain_is_inside_the_error(tmp_path
     # (rounded for the cleanroom) and its ratio is 1 to rounding: any positive error
     # estimate must contain it, and design must say so (common practice, no source).
     # The start keeps the rules, so it is the spec's own.
-    from designer import commands
-    from designer.cli import main
-
-    path = write(tmp_path, """\
-[beam]
-voltage_kV = 30.0
-[laser]
-wavelength_nm = 800.0
-[solver]
-grid_step_nm = 40.0
-[fabrication]
-min_feature_nm = 40.0
-min_gap_nm = 40.0
-[sample]
-family = "grating"
-material = "fused_silica"
-period_nm = 500.0
-duty_cycle = 0.4
-tooth_height_nm = 150.0
-[path]
-offset_nm = 20.0
-length_um = 3.0
-[optimize]
-variables = ["duty_cycle"]
-iterations = 1
-""")
-    orig = commands.run_design
-    commands.run_design = d.design_command
-    try:
-        assert main(["design", str(path), "--out", str(tmp_path / "out")]) == 0
-    finally:
-        commands.run_design = orig
+    text = GRATING.replace('method = "adam"', 'optimizer = "lbfgsb"').replace(
+        "grid_step_nm = 20.0", "grid_step_nm = 40.0").replace("length_um = 10.0",
+                                                               "length_um = 3.0")
+    path = write(tmp_path, text.format(objective="coupling", iterations=1, starts=1, extra=""))
+    assert design_cli(path, tmp_path / "out") == 0
     captured = capsys.readouterr()
     assert "outside the rules" not in captured.err
     assert "start: the spec's own start" in captured.out
