@@ -461,8 +461,8 @@ def output_listing(out: Path) -> list[tuple[str, Path]]:
 def _gain_words(gain: dict) -> str:
     """The design's gain with its combined error, and whether it is one."""
     if gain.get("absolute_error") is None:
-        return f"{gain['ratio']:.4g} (no error estimate)"
-    text = f"{gain['ratio']:.4g} +/- {gain['absolute_error']:.2g}"
+        return f"{gain['ratio']:.5g} (no error estimate)"
+    text = f"{gain['ratio']:.5g} +/- {gain['absolute_error']:.2g}"
     return text + ("" if gain["gain_exceeds_error"] else
                    " (inside the combined error: not a gain)")
 

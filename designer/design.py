@@ -1382,8 +1382,8 @@ def gain_warning(label: str, gain: dict) -> str | None:
         return None
     if gain["gain_exceeds_error"] is None:
         return (f"warning: {label}: no error estimate on the refined grid, so the ratio "
-                f"{r:.4g} cannot be told from the discretization error")
-    err = f"{r:.4g} +/- {gain['absolute_error']:.2g}"
+                f"{r:.5g} cannot be told from the discretization error")
+    err = f"{r:.5g} +/- {gain['absolute_error']:.2g}"
     if not gain["gain_exceeds_error"]:
         return (f"warning: the gain in {label} on the refined grid, {err}, is inside the "
                 "combined error estimate: it is not a gain (refine the grid, [solver] "
@@ -1427,11 +1427,11 @@ def _gain_text(g: dict) -> str:
     if g["ratio"] is None:
         return "n/a"
     if g["absolute_error"] is None:
-        return f"{g['ratio']:.4g} +/- ?"
+        return f"{g['ratio']:.5g} +/- ?"
     inside = "" if g["gain_exceeds_error"] else " (inside error)"
     if g["absolute_error"] == 0:
-        return f"{g['ratio']:.4g} (exact){inside}"
-    return f"{g['ratio']:.4g} +/- {g['absolute_error']:.2g}{inside}"
+        return f"{g['ratio']:.5g} (exact){inside}"
+    return f"{g['ratio']:.5g} +/- {g['absolute_error']:.2g}{inside}"
 
 
 def start_label(check: dict | None) -> str:
