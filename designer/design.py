@@ -1500,10 +1500,11 @@ def comparison(result: DesignResult, start_eval: dict, design_eval: dict,
              f"start: {start_label(check)}"]
     if not check["within_rules"]:
         lines += [""] + start_check_lines(check)
-    lines += ["", f"  {'variable':28s} {'start':>12s} {'optimized':>12s}   bounds"]
+    head = "start (moved)" if check["moved"] else "start (spec)"
+    lines += ["", f"  {'variable':28s} {head:>13s} {'optimized':>12s}   bounds"]
     for k in p.config.keys:
         lo, hi = p.config.bounds[k]
-        lines.append(f"  {k:28s} {start_values[k]:12.5g} {best_values[k]:12.5g}   "
+        lines.append(f"  {k:28s} {start_values[k]:13.5g} {best_values[k]:12.5g}   "
                      f"[{lo:g}, {hi:g}]")
     fmt = lambda v: "n/a" if v is None else f"{v:.5g}"  # noqa: E731
     if refined is not None:
@@ -1513,7 +1514,7 @@ def comparison(result: DesignResult, start_eval: dict, design_eval: dict,
                  + " nm)" if steps else "exact layer-stack solutions")
         lines += ["", f"  {where}, every figure +/- its error estimate; gain +/- the "
                   "combined error",
-                  f"  {'figure':30s} {'start':>24s} {'optimized':>24s}   gain"]
+                  f"  {'figure':30s} {head:>24s} {'optimized':>24s}   gain"]
         for key, label in FIGURE_KEYS:
             r = refined["figures"][key]
             if r["start"]["value"] is None and r["optimized"]["value"] is None:
@@ -1527,14 +1528,14 @@ def comparison(result: DesignResult, start_eval: dict, design_eval: dict,
                   + ", ".join(f"{label} {fmt(own.get(key))}" for key, label in FIGURE_KEYS
                               if own.get(key) is not None)]
     lines += ["", "  on the design grid (evaluation.json)",
-              f"  {'figure':36s} {'start':>12s} {'optimized':>12s} {'ratio':>8s}"]
+              f"  {'figure':36s} {head:>13s} {'optimized':>12s} {'ratio':>8s}"]
     for key, label in FIGURE_KEYS:
         f = figures[key]
         if f["start"] is None and f["optimized"] is None:
             continue
-        lines.append(f"  {label:36s} {fmt(f['start']):>12s} {fmt(f['optimized']):>12s} "
+        lines.append(f"  {label:36s} {fmt(f['start']):>13s} {fmt(f['optimized']):>12s} "
                      f"{fmt(f['ratio']):>8s}")
-    lines.append(f"  {'optimizer objective':36s} {result.start_record['objective']:12.5g} "
+    lines.append(f"  {'optimizer objective':36s} {result.start_record['objective']:13.5g} "
                  f"{result.best_record['objective']:12.5g}")
     v = data["design_rule_violations"]["optimized"]
     if p.chain is not None:
@@ -1739,8 +1740,9 @@ def write_design_report(path, result: DesignResult, ev, design_eval: dict, start
 
     check = comp.get("start_check") or result.start_check
     start_name = start_label(check)
-    columns = (("figure", "start", "optimized", "gain (optimized / start)") if with_errors
-               else ("figure", "start", "optimized"))
+    head = "start (moved)" if check is not None and check["moved"] else "start (spec)"
+    columns = (("figure", head, "optimized", "gain (optimized / start)") if with_errors
+               else ("figure", head, "optimized"))
     caption = (f"start ({start_name}) against the optimized design, both on the refined "
                "grid; each figure +/- its error estimate, each gain +/- the combined error "
                "(root-sum-square of the relative errors)" if with_errors else
