@@ -97,10 +97,11 @@ def test_density_chain_matches_finite_differences(slabs, upper, roll):
     w = rng.standard_normal((3,) + param.shape)
     beta = 6.0
 
+    @jax.jit
     def f(r):
         return jnp.sum(jnp.asarray(w) * chain.designs(jnp.reshape(r, param.raw_shape), beta))
 
-    grad = np.asarray(jax.grad(f)(jnp.asarray(raw.ravel())))
+    grad = np.asarray(jax.jit(jax.grad(f))(jnp.asarray(raw.ravel())))
     fd = central(lambda r: float(f(r)), raw.ravel(), 1e-6)
     np.testing.assert_allclose(grad, fd, rtol=1e-6, atol=1e-8 * np.abs(fd).max())
     # and the map is the one described: the upper rows mirror (and roll) the lower ones
