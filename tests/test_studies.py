@@ -69,7 +69,8 @@ def _meep_available() -> bool:
 # ------------------------------------------------------------------ fast checks
 def test_study_files_are_complete():
     # each study: a script, a README and its spec files (the layout)
-    for name in ("grating_30kV", "membrane_candidates", "prism_tir", "onchip_accelerator"):
+    for name in ("grating_30kV", "grating_5kV", "membrane_candidates", "prism_tir",
+                 "onchip_accelerator"):
         folder = STUDIES / name
         assert (folder / "run.py").is_file() and (folder / "README.md").is_file()
         assert list(folder.glob("*.toml")), name
