@@ -45,7 +45,7 @@ CROSSCHECK_TOL = 0.02   # the command's default tolerance (common practice, no s
 # part 2: hole arrays (template sin_150nm_holes.toml) against the films
 HOLE_TEMPLATE = "sin_150nm_holes.toml"
 HOLE_LATTICES = ("square", "hexagonal")
-HOLE_RADII_NM = {False: (80.0, 130.0, 180.0), True: (80.0, 180.0)}
+HOLE_RADII_NM = {False: (80.0, 130.0, 180.0), True: (80.0,)}   # quick: one size per lattice
 HOLE_ORDERS = {False: 3, True: 2}        # Fourier orders N of the scans and the ranking
 ANGLE_SCAN = {False: "0:70:36", True: "0:60:13"}
 # fine scans around each angle where a folded guided mode of the film is predicted
