@@ -233,11 +233,21 @@ def _holes(out: Path, quick: bool) -> tuple[dict, tuple]:
         where = out / "holes" / "angles" / name
         angles, b, data = angle_scan(path, ANGLE_SCAN[quick], where)
         modes = guided_mode_angles(data, angles)
+        edges = []
         for j, a in enumerate(modes):
             lo, hi = max(a - half, 0.0), min(a + half, 89.0)
             print(f"  fine scan of {name} around the guided mode at {a:.2f} deg",
                   file=sys.stderr)
             fa, fb, _ = angle_scan(path, f"{lo:.6g}:{hi:.6g}:{points}", where / f"mode{j}")
+            angles, b = np.concatenate([angles, fa]), np.concatenate([b, fb])
+            edges += [lo, hi]
+        # a maximum on the edge of a fine window: one more window centred on it
+        a = float(angles[int(np.argmax(b))])
+        if modes and any(abs(a - e) < 1e-9 for e in edges) and 0.0 < a < 89.0:
+            lo, hi = max(a - half, 0.0), min(a + half, 89.0)
+            print(f"  fine scan of {name} around {a:.2f} deg (edge of a window)",
+                  file=sys.stderr)
+            fa, fb, _ = angle_scan(path, f"{lo:.6g}:{hi:.6g}:{points}", where / "edge")
             angles, b = np.concatenate([angles, fa]), np.concatenate([b, fb])
         order = np.argsort(angles)
         angles, b = angles[order], b[order]
