@@ -240,7 +240,7 @@ def _holes(out: Path, quick: bool) -> tuple[dict, tuple]:
                   file=sys.stderr)
             fa, fb, _ = angle_scan(path, f"{lo:.6g}:{hi:.6g}:{points}", where / f"mode{j}")
             angles, b = np.concatenate([angles, fa]), np.concatenate([b, fb])
-            edges += [lo, hi]
+            edges += [float(fa[0]), float(fa[-1])]
         # a maximum on the edge of a fine window: one more window centred on it
         a = float(angles[int(np.argmax(b))])
         if modes and any(abs(a - e) < 1e-9 for e in edges) and 0.0 < a < 89.0:
