@@ -40,11 +40,16 @@ runs (the continuation changes the loss on purpose): they run their iteration bu
 Outputs in the folder ``--out DIR`` (never reused unless ``--overwrite`` or
 ``--resume``): ``design.toml`` (the optimized design, a complete spec),
 ``evaluation.json`` (``velomatch evaluate design.toml`` reproduces it),
-``refined.json`` (the design at a finer step, with its error estimate),
-``design.png`` (design and fields), ``history.json`` and ``convergence.png``,
-``comparison.json`` / ``comparison.txt`` (start vs optimized) and
+``refined.json`` / ``start_refined.json`` (the design and its start at one finer step,
+with their error estimates), ``design.png`` (design and fields), ``history.json`` and
+``convergence.png``, ``comparison.json`` / ``comparison.txt`` (start vs optimized: the
+start check, every figure with its error, each gain with the combined error) and
 ``checkpoint.json`` (written every ``checkpoint_every`` iterations; ``--resume``
 continues from it, bit-exactly).
+
+A start outside the rules (:func:`start_check`: the design-rule check of the spec's own
+start, and variables outside their bounds) is reported before the run and continues
+from the start moved inside the bounds; the comparison says which start it shows.
 """
 
 from __future__ import annotations
@@ -1377,8 +1382,8 @@ def gain_warning(label: str, gain: dict) -> str | None:
         return None
     if gain["gain_exceeds_error"] is None:
         return (f"warning: {label}: no error estimate on the refined grid, so the ratio "
-                f"{r:.4g} cannot be told from the discretization error")
-    err = f"{r:.4g} +/- {gain['absolute_error']:.2g}"
+                f"{r:.5g} cannot be told from the discretization error")
+    err = f"{r:.5g} +/- {gain['absolute_error']:.2g}"
     if not gain["gain_exceeds_error"]:
         return (f"warning: the gain in {label} on the refined grid, {err}, is inside the "
                 "combined error estimate: it is not a gain (refine the grid, [solver] "
@@ -1422,11 +1427,11 @@ def _gain_text(g: dict) -> str:
     if g["ratio"] is None:
         return "n/a"
     if g["absolute_error"] is None:
-        return f"{g['ratio']:.4g} +/- ?"
+        return f"{g['ratio']:.5g} +/- ?"
     inside = "" if g["gain_exceeds_error"] else " (inside error)"
     if g["absolute_error"] == 0:
-        return f"{g['ratio']:.4g} (exact){inside}"
-    return f"{g['ratio']:.4g} +/- {g['absolute_error']:.2g}{inside}"
+        return f"{g['ratio']:.5g} (exact){inside}"
+    return f"{g['ratio']:.5g} +/- {g['absolute_error']:.2g}{inside}"
 
 
 def start_label(check: dict | None) -> str:
@@ -1495,10 +1500,11 @@ def comparison(result: DesignResult, start_eval: dict, design_eval: dict,
              f"start: {start_label(check)}"]
     if not check["within_rules"]:
         lines += [""] + start_check_lines(check)
-    lines += ["", f"  {'variable':28s} {'start':>12s} {'optimized':>12s}   bounds"]
+    head = "start (moved)" if check["moved"] else "start (spec)"
+    lines += ["", f"  {'variable':28s} {head:>13s} {'optimized':>12s}   bounds"]
     for k in p.config.keys:
         lo, hi = p.config.bounds[k]
-        lines.append(f"  {k:28s} {start_values[k]:12.5g} {best_values[k]:12.5g}   "
+        lines.append(f"  {k:28s} {start_values[k]:13.5g} {best_values[k]:12.5g}   "
                      f"[{lo:g}, {hi:g}]")
     fmt = lambda v: "n/a" if v is None else f"{v:.5g}"  # noqa: E731
     if refined is not None:
@@ -1508,7 +1514,7 @@ def comparison(result: DesignResult, start_eval: dict, design_eval: dict,
                  + " nm)" if steps else "exact layer-stack solutions")
         lines += ["", f"  {where}, every figure +/- its error estimate; gain +/- the "
                   "combined error",
-                  f"  {'figure':30s} {'start':>24s} {'optimized':>24s}   gain"]
+                  f"  {'figure':30s} {head:>24s} {'optimized':>24s}   gain"]
         for key, label in FIGURE_KEYS:
             r = refined["figures"][key]
             if r["start"]["value"] is None and r["optimized"]["value"] is None:
@@ -1522,14 +1528,14 @@ def comparison(result: DesignResult, start_eval: dict, design_eval: dict,
                   + ", ".join(f"{label} {fmt(own.get(key))}" for key, label in FIGURE_KEYS
                               if own.get(key) is not None)]
     lines += ["", "  on the design grid (evaluation.json)",
-              f"  {'figure':36s} {'start':>12s} {'optimized':>12s} {'ratio':>8s}"]
+              f"  {'figure':36s} {head:>13s} {'optimized':>12s} {'ratio':>8s}"]
     for key, label in FIGURE_KEYS:
         f = figures[key]
         if f["start"] is None and f["optimized"] is None:
             continue
-        lines.append(f"  {label:36s} {fmt(f['start']):>12s} {fmt(f['optimized']):>12s} "
+        lines.append(f"  {label:36s} {fmt(f['start']):>13s} {fmt(f['optimized']):>12s} "
                      f"{fmt(f['ratio']):>8s}")
-    lines.append(f"  {'optimizer objective':36s} {result.start_record['objective']:12.5g} "
+    lines.append(f"  {'optimizer objective':36s} {result.start_record['objective']:13.5g} "
                  f"{result.best_record['objective']:12.5g}")
     v = data["design_rule_violations"]["optimized"]
     if p.chain is not None:
@@ -1593,17 +1599,24 @@ def start_spec(spec: Spec, check: dict) -> Spec:
     return parse_spec(design_raw(spec, params), source=spec.source, base_dir=spec.base_dir)
 
 
-def refined_evaluation(spec: Spec, ev, fine_step_m: float | None, factor: float, what: str,
-                       say) -> dict:
+def refined_evaluation(spec: Spec, ev, coarse: dict, fine_step_m: float | None, factor: float,
+                       what: str, say) -> dict:
     """The evaluation JSON of ``spec`` at the finer step with its error estimate (FDFD:
-    three grids; Fourier modal: N against N + 2 orders; layer stacks: exact, ``ev``)."""
+    three grids; Fourier modal: N against N + 2 orders; layer stacks: exact, ``ev``, whose
+    evaluation JSON is ``coarse``).
+
+    Its ``design_rules`` are those of ``coarse`` (the design's own grid): a free-form
+    pattern is made for that grid, and resampling it onto a finer one may tilt column
+    edges that are straight on its own."""
     from designer.evaluate import evaluate, evaluation_json
 
     if ev.solver == "fdfd":
         say(f"re-evaluating the {what} design at {fine_step_m * 1e9:.3g} nm with the error "
             "estimate (three grids)")
-        out = vio.require_finite(evaluation_json(evaluate(spec, grid_step_m=fine_step_m,
-                                                          refine=True, progress=say)))
+        out = evaluation_json(evaluate(spec, grid_step_m=fine_step_m, refine=True,
+                                       progress=say))
+        out["design_rules"] = coarse["design_rules"]
+        out = vio.require_finite(out)
         out["note"] = (f"step {fine_step_m:.4g} m = the finer of the start's and the design's "
                        f"evaluation steps / {factor:g}; relative_error_estimate from solves at "
                        "about 1.5x and 2.25x that step (three-grid Richardson with the "
@@ -1613,7 +1626,7 @@ def refined_evaluation(spec: Spec, ev, fine_step_m: float | None, factor: float,
         out = vio.require_finite(evaluation_json(evaluate(spec, refine=True, progress=say)))
         out["note"] = "Fourier modal method: relative_error_estimate compares N with N + 2 orders"
     else:
-        out = vio.require_finite(evaluation_json(ev))
+        out = dict(coarse)
         out["note"] = "exact layer-stack solution: no finer grid exists (error 0)"
     return out
 
@@ -1664,11 +1677,11 @@ def write_outputs(result: DesignResult, out_dir: str | Path, *, status=None) -> 
     # three-grid error estimate
     steps = [e.run.grid_step_m for e in (ev, start_ev) if e.run.grid_step_m]
     fine = min(steps) / p.config.refine_factor if steps else None
-    refined = refined_evaluation(design_spec, ev, fine, p.config.refine_factor, "optimized",
-                                 say)
+    refined = refined_evaluation(design_spec, ev, design_eval, fine, p.config.refine_factor,
+                                 "optimized", say)
     vio.write_json(out / "refined.json", refined)
-    start_refined = refined_evaluation(begin, start_ev, fine, p.config.refine_factor,
-                                       "start", say)
+    start_refined = refined_evaluation(begin, start_ev, start_eval, fine,
+                                       p.config.refine_factor, "start", say)
     vio.write_json(out / "start_refined.json", start_refined)
     errors = refined_comparison(start_refined, start_eval, refined, design_eval,
                                 p.config.objective)
@@ -1727,8 +1740,9 @@ def write_design_report(path, result: DesignResult, ev, design_eval: dict, start
 
     check = comp.get("start_check") or result.start_check
     start_name = start_label(check)
-    columns = (("figure", "start", "optimized", "gain (optimized / start)") if with_errors
-               else ("figure", "start", "optimized"))
+    head = "start (moved)" if check is not None and check["moved"] else "start (spec)"
+    columns = (("figure", head, "optimized", "gain (optimized / start)") if with_errors
+               else ("figure", head, "optimized"))
     caption = (f"start ({start_name}) against the optimized design, both on the refined "
                "grid; each figure +/- its error estimate, each gain +/- the combined error "
                "(root-sum-square of the relative errors)" if with_errors else

@@ -1,9 +1,12 @@
 """One design-rule verdict: what `design` reports is what `export` enforces.
 
 For every family, plane and free-form setting, the verdict that `velomatch design`
-prints for a design (designer.design._violations, the check behind "design-rule
-check: clean") must equal what `velomatch export` does with the same spec: write it
-when the verdict is clean, refuse it (exit 3) with the same violations otherwise.
+reports for the spec's own start (designer.design.start_check, before any variable is
+moved into its bounds) must equal what `velomatch export` does with the same spec:
+write it when the verdict is clean, refuse it (exit 3) with the same violations
+otherwise.  Where nothing is moved, the run's own check of its start point
+(designer.design._violations, the check behind "design-rule check: clean") must say
+the same.
 Both sides are computed by the program, so this checks their agreement, not a physical
 value; the geometric facts behind the planted violations (a 200 nm wide tooth is
 narrower than a 300 nm rule; a column with a solid foot under a void changes
