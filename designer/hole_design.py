@@ -532,6 +532,23 @@ class HoleObjective:
                            CHECK_FACTOR * cfg.pulse_points)
 
 
+_OBJECTIVES: dict = {}    # (spec, settings bar the budget) -> HoleObjective, last few
+
+
+def cached_objective(spec: Spec, config: HoleDesignConfig) -> HoleObjective:
+    """:class:`HoleObjective`, reused while spec and settings are the same (a resume in
+    the same process does not compile again)."""
+    key = (spec.sha256, spec.source, json.dumps(vio.to_jsonable(config.identity()),
+                                                sort_keys=True))
+    if key not in _OBJECTIVES:
+        while len(_OBJECTIVES) >= 4:
+            _OBJECTIVES.pop(next(iter(_OBJECTIVES)))
+        _OBJECTIVES[key] = HoleObjective(spec, config)
+    fobj = _OBJECTIVES[key]
+    fobj.config = config
+    return fobj
+
+
 # ---------------------------------------------------------------------------------
 # the run
 # ---------------------------------------------------------------------------------
@@ -559,7 +576,7 @@ def run_hole_design(spec: Spec, out_dir, config: HoleDesignConfig, *, resume: bo
     keys = config.keys
     check = move_inside(spec, config)
     allowed = set(check["remaining"])
-    fobj = objective or HoleObjective(spec, config)
+    fobj = objective or cached_objective(spec, config)
     if resume:
         from designer.design import _read_checkpoint
 
