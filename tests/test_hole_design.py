@@ -193,46 +193,48 @@ def test_nominal_figure_is_what_evaluate_reports(objective):
 def test_resonance_narrower_than_the_pulse_is_not_a_gain(tmp_path):
     """A guided resonance (~1 nm wide near 818 nm at orders 2) under a 20 fs pulse (about
     49 nm wide): its pulse average is far below its peak.  Reference: an independent
-    brute-force average, the trapezoid rule of S(omega) f over 200 wavelengths (dense on
+    brute-force average, the trapezoid rule of S(omega) f over 100 wavelengths (dense on
     the resonance), with S the Gaussian power spectrum (common practice, no source)."""
     p = _spec(tmp_path, angle=20.0, duration=20.0, thickness=200.0, period=500.0,
               radius=80.0, x=150.0, variables='["hole_radius_nm"]', points=5)
     spec = load_spec(p)
     obj = hd.HoleObjective(spec, hd.parse_hole_optimize(spec))
     u = obj.encode({"hole_radius_nm": 80.0})
-    scan = np.linspace(812e-9, 824e-9, 25)
+    scan = np.linspace(812e-9, 824e-9, 13)
+    lam_p = scan[int(np.argmax([obj.point(u, lam) for lam in scan]))]
+    scan = lam_p + np.linspace(-0.75e-9, 0.75e-9, 7)
     vals = [obj.point(u, lam) for lam in scan]
-    lam_p = scan[int(np.argmax(vals))]
-    peak = max(vals)
+    lam_p, peak = scan[int(np.argmax(vals))], max(vals)
     tau = 20e-15
     w0 = 2 * math.pi * constants.c / lam_p
     sw = 2 * math.sqrt(math.log(2)) / tau      # omega - w0 = x * sw, S ~ exp(-x^2)
-    x = np.unique(np.concatenate([np.linspace(-3, 3, 120),
+    x = np.unique(np.concatenate([np.linspace(-3, 3, 61),
                                   (2 * math.pi * constants.c / np.linspace(
-                                      lam_p + 2e-9, lam_p - 2e-9, 80) - w0) / sw]))
+                                      lam_p + 2e-9, lam_p - 2e-9, 41) - w0) / sw]))
     f = np.array([obj.point(u, 2 * math.pi * constants.c / (w0 + xi * sw)) for xi in x])
     s = np.exp(-x**2)
     brute = np.trapezoid(s * f, x) / np.trapezoid(s, x)
     # the physics: the pulse sees the resonance with its share of the spectrum
     assert brute < 0.3 * peak
-    # the design's average, with the nodes centred on the resonance, is fooled when a
-    # node sits on it; the bandwidth check (4x the nodes) exposes that
+    # a few nodes cannot resolve it: with the centre node on the peak the 5-node average
+    # overstates the pulse average; the run's bandwidth check (4x the nodes) exposes that
     lams, w = hd.pulse_nodes(lam_p, tau, 5)
     coarse = sum(wi * obj.point(u, li) for li, wi in zip(lams, w))
-    lams, w = hd.pulse_nodes(lam_p, tau, 20)
+    lams, w = hd.pulse_nodes(lam_p, tau, 4 * 5)
     fine = sum(wi * obj.point(u, li) for li, wi in zip(lams, w))
+    assert coarse > 2 * brute
     assert abs(coarse - fine) / fine > hd.BANDWIDTH_CHECK_TOL
-    # 20 nodes (no node on the peak) come within 25 % of the brute-force average
-    assert fine == pytest.approx(brute, rel=0.25)
-    assert fine < 0.3 * peak
 
 
 @pytest.mark.slow
 def test_short_design_improves_keeps_rules_resumes_and_exports(tmp_path, capsys):
     p = _spec(tmp_path, radius=190.0, iterations=2, aggregate="worst")
     out = tmp_path / "out"
-    r = _run(capsys, "design", p, "--out", out)
-    assert r.returncode == 0, r.stderr
+    out.mkdir()
+    # the first two iterations through the API (checkpoint only), the rest by --resume
+    spec = load_spec(p)
+    first = hd.run_hole_design(spec, out, hd.parse_hole_optimize(spec), progress=False)
+    assert len(first["run"].history) == 3 and (out / "checkpoint.json").is_file()
     r = _run(capsys, "design", p, "--out", out, "--resume", "--iterations", "4")
     assert r.returncode == 0, r.stderr
     hist = json.loads((out / "history.json").read_text())
