@@ -878,6 +878,16 @@ def convergence_figure(history: list, config: HoleDesignConfig):
     return fig
 
 
+def design_holes(spec: Spec, out: Path, *, iterations: int | None = None,
+                 resume: bool = False, progress: bool = True,
+                 status: Callable[[str], None] | None = None) -> dict:
+    """Parse, run and write a hole design into the prepared folder ``out``; returns the
+    comparison dict."""
+    config = parse_hole_optimize(spec, iterations)
+    result = run_hole_design(spec, out, config, resume=resume, progress=progress)
+    return write_hole_outputs(spec, config, result, out, status=status)
+
+
 def hole_design_command(args, spec: Spec) -> int:
     """``velomatch design`` of a hole membrane (module docstring)."""
     from designer.spec import input_files
@@ -894,7 +904,7 @@ def hole_design_command(args, spec: Spec) -> int:
           f"orders {config.orders}, {len(config.wavelengths_m)} wavelength(s) x "
           f"{len(config.radius_errors_nm)} radius error(s) per step)", file=sys.stderr)
     status("compiling the FMM gradient (once per run)")
-    result = run_hole_design(spec, out, config, resume=getattr(args, "resume", False))
-    write_hole_outputs(spec, config, result, out, status=status)
+    design_holes(spec, out, iterations=getattr(args, "iterations", None),
+                 resume=getattr(args, "resume", False), status=status)
     print((out / "comparison.txt").read_text(), end="")
     return 0
