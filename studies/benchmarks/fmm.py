@@ -28,7 +28,12 @@ import statistics
 import sys
 import time
 
-import numpy as np
+# One BLAS thread: the eigensolve runs in numpy's LAPACK next to XLA's own thread pool,
+# and a multithreaded OpenBLAS on 2 shared cores oversubscribes them (measured several
+# times slower per solve).  Set before numpy loads; an explicit setting wins.
+os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+
+import numpy as np  # noqa: E402
 
 sys.path.insert(0, os.path.join(os.path.dirname(__file__), "..", ".."))
 
@@ -131,6 +136,7 @@ def main(argv=None):
         c["relative_change_to_highest"] = abs(c["beta_c"] / ref - 1)
     out["convergence"] = conv
     out["cores"] = os.cpu_count()
+    out["openblas_threads"] = os.environ.get("OPENBLAS_NUM_THREADS")
     print(json.dumps(out, indent=1))
 
 
