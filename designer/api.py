@@ -189,7 +189,7 @@ def design(spec: Spec | str | Path, out_dir: str | Path, *, iterations: int | No
     spec = _spec(spec)
     config = parse_optimize(spec, iterations)
     out = vio.prepare_output_dir(out_dir, overwrite=overwrite, resume=resume)
-    result = run_design(spec, out, config, resume=resume)
+    result = run_design(spec, out, config, resume=resume, status=_say(quiet))
     write_outputs(result, out, status=_say(quiet))
     return {"comparison": json.loads((out / "comparison.json").read_text()),
             "evaluation": json.loads((out / "evaluation.json").read_text()),

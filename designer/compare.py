@@ -5,9 +5,11 @@ self-contained ``DIR/report.html``.
 
 Same footing: every candidate is evaluated with the ``[beam]`` table, the ``[laser]``
 table (wavelength, amplitude, pulse duration, spot) and the grid step of the
-*first* spec.  The angle and side of incidence (``laser.angle_deg``, ``laser.from``)
-stay each candidate's own: they are part of a sample's design (a prism needs its
-phase-matched angle, a film its oblique one).  The grid step is the first spec's
+*first* spec.  How the sample is lit and crossed stays each candidate's own
+(``laser.angle_deg``, ``laser.from``, ``laser.azimuth_deg``, ``laser.polarization`` and
+the whole ``[path]`` table): they are part of a sample's design (a prism needs its
+phase-matched angle, a film its oblique one, a hole array its azimuth and the
+electron's point in the unit cell).  The grid step is the first spec's
 ``solver.grid_step_nm``; when it gives none, the step chosen automatically for the
 first spec solved on a grid (or, if the first is an exact layer stack, the finest
 automatic step among the others).  The report says which.
@@ -30,7 +32,16 @@ below move one thing at a time:
   for P_l = J_l(2|beta_c|)^2).  Found on a geometric grid of offsets (angles up to
   ±89.5°), the bracket refined twice with three more points, the crossing linearly
   interpolated.  When the
-  coupling stays above the level across the scan the width is a lower bound.
+  coupling stays above the level across the scan the width is a lower bound;
+* ranking: on the *averaged* coupling per unit field, ``|beta_c,0|`` times the mean of
+  ``|beta_c| / |beta_c,0|`` over the pulse's power spectrum (transform-limited
+  Gaussian of ``laser.duration_fs``) and, separately, over the beam's angular spectrum
+  (Gaussian beam of ``laser.spot_radius_um``), read off the two scans above
+  (:func:`laser_spreads`, :func:`spread_average`).  Without duration and spot both
+  means are 1 and the ranking is on the nominal coupling.
+
+Every family goes through the same scans, the Fourier-modal hole and slit membranes
+included (their angle scan moves the polar angle at the candidate's own azimuth).
 """
 
 from __future__ import annotations
@@ -42,6 +53,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
+from scipy.constants import c as C0
 
 from designer import io as vio
 from designer import report as rp
@@ -56,6 +68,12 @@ REFINE_POINTS = 3
 REFINE_ROUNDS = 2
 MAX_ANGLE_DEG = 89.5
 _POSITION_KEYS = ("center", "centre", "shift")
+# how a candidate is lit and crossed is part of its design, not of the footing
+OWN_LASER_KEYS = ("angle_deg", "from", "azimuth_deg", "polarization")
+# transform-limited Gaussian pulse: intensity FWHM in time x in frequency
+# (A. E. Siegman, Lasers, 1986, ch. 9: 2 ln 2 / pi)
+TIME_BANDWIDTH = 2.0 * math.log(2.0) / math.pi
+AVERAGE_POINTS = 201
 
 
 @dataclass(frozen=True)
@@ -98,13 +116,13 @@ def common_footing(specs: Sequence) -> tuple[list[dict], dict]:
     first = specs[0]
     beam = copy.deepcopy(first.raw.get("beam", {}))
     laser = {k: copy.deepcopy(v) for k, v in first.raw.get("laser", {}).items()
-             if k not in ("angle_deg", "from")}
+             if k not in OWN_LASER_KEYS}
     raws = []
     changed = []
     for spec in specs:
         raw = copy.deepcopy(spec.raw)
         own_laser = raw.get("laser", {})
-        kept = {k: own_laser[k] for k in ("angle_deg", "from") if k in own_laser}
+        kept = {k: own_laser[k] for k in OWN_LASER_KEYS if k in own_laser}
         new_laser = {**laser, **kept}
         if raw.get("beam") != beam or own_laser != new_laser:
             changed.append(spec.source)
@@ -130,7 +148,7 @@ def common_footing(specs: Sequence) -> tuple[list[dict], dict]:
             raw.setdefault("solver", {})["grid_step_nm"] = grid_step_nm
     footing = {"from": first.source, "beam": beam, "laser": laser,
                "grid_step_nm": grid_step_nm, "grid_step_from": how,
-               "kept_per_candidate": ["laser.angle_deg", "laser.from"],
+               "kept_per_candidate": [f"laser.{k}" for k in OWN_LASER_KEYS] + ["path"],
                "changed": changed}
     return raws, footing
 
@@ -147,7 +165,7 @@ def _size_keys(variables: dict) -> list[str]:
     for key in variables:
         if any(p in key for p in _POSITION_KEYS):
             continue
-        if key.endswith("_nm") or key == "duty_cycle":
+        if key.split(".", 1)[0].endswith("_nm") or key == "duty_cycle":
             keys.append(key)
     return keys
 
@@ -356,6 +374,57 @@ def _scan_width(scan: dict, what: str) -> dict | None:
     return half_width(offsets, ratios)
 
 
+def laser_spreads(raw: dict) -> dict:
+    """Spectral and angular spread of the common laser (spec units).
+
+    * pulse: a transform-limited Gaussian of intensity FWHM ``duration_fs`` has the
+      power-spectrum FWHM ``dnu = TIME_BANDWIDTH / tau``, i.e.
+      ``dlambda = TIME_BANDWIDTH lambda^2 / (c tau)`` (nm);
+    * beam: a Gaussian beam of 1/e² intensity radius ``w0 = spot_radius_um`` at its
+      waist has the far-field 1/e² half-angle ``theta0 = lambda / (pi w0)`` in vacuum
+      (Siegman, Lasers, ch. 17), its angular power spectrum ``exp(-2 dtheta² / theta0²)``.
+
+    None where the spec gives no duration / spot (a monochromatic plane wave)."""
+    laser = raw.get("laser", {})
+    lam_m = float(laser["wavelength_nm"]) * 1e-9
+    tau = laser.get("duration_fs")
+    w0 = laser.get("spot_radius_um")
+    return {"spectral_fwhm_nm": (None if tau is None else
+                                 TIME_BANDWIDTH * lam_m**2 / (C0 * float(tau) * 1e-15) * 1e9),
+            "angular_half_width_deg": (None if w0 is None else
+                                       math.degrees(lam_m / (math.pi * float(w0) * 1e-6)))}
+
+
+def spread_average(curve, spread: float | None, kind: str) -> float:
+    """Mean of ``|beta_c| / |beta_c,0|`` over the laser's spread around the nominal
+    value: ``curve`` rows ``(offset, ratio)``; ``kind`` "spectral" (``spread`` = power
+    FWHM, weight ``exp(-4 ln 2 x² / FWHM²)``) or "angular" (``spread`` = 1/e²
+    half-angle, weight ``exp(-2 x² / theta0²)``); the ratio is interpolated linearly
+    on the scan.  1 without a spread."""
+    if not spread:
+        return 1.0
+    pts = np.asarray(sorted(curve), dtype=float)
+    sigma = spread / (2.0 * math.sqrt(2.0 * math.log(2.0))) if kind == "spectral" \
+        else 0.5 * spread
+    x = np.linspace(-4.0 * sigma, 4.0 * sigma, AVERAGE_POINTS)
+    w = np.exp(-0.5 * (x / sigma) ** 2)
+    r = np.interp(x, pts[:, 0], pts[:, 1])
+    return float(np.sum(w * r) / np.sum(w))
+
+
+def _bandwidth_average(c: Candidate, result: dict, curves: dict) -> dict:
+    spreads = laser_spreads(c.raw)
+    ratios = {"spectral_ratio": spread_average(curves["wavelength"],
+                                               spreads["spectral_fwhm_nm"], "spectral"),
+              "angular_ratio": spread_average(curves["angle"],
+                                              spreads["angular_half_width_deg"], "angular")}
+    factor = ratios["spectral_ratio"] * ratios["angular_ratio"]
+    coupling = result["coupling"]
+    return {**spreads, **ratios,
+            "beta_c": coupling["beta_c"] * factor,
+            "beta_c_per_field_m_per_V": coupling["beta_c_per_field_m_per_V"] * factor}
+
+
 def _assemble(candidates, footing, scans) -> dict:
     from designer.provenance import provenance
 
@@ -381,11 +450,12 @@ def _assemble(candidates, footing, scans) -> dict:
                      "worst_ratio": None if worst is None else worst["ratio"],
                      "worst_parameter": None if worst is None else worst["parameter"],
                      "worst_change_nm": None if worst is None else worst["change_nm"]}
-        bands = {}
+        bands, curves = {}, {}
         for what, unit in (("angle", "deg"), ("wavelength", "nm")):
             hw = _scan_width(scan, what)
             curve = sorted([(0.0, 1.0)] + [(o, _beta(out) / b0) for o, out in scan[what]
                                             if _beta(out) is not None and b0])
+            curves[what] = curve
             nominal = c.angle_deg if what == "angle" else c.wavelength_nm
             bands[what] = {
                 "unit": unit, "nominal": nominal,
@@ -405,9 +475,11 @@ def _assemble(candidates, footing, scans) -> dict:
             "tolerance_10nm": tolerance,
             "angular_bandwidth_deg": bands["angle"],
             "spectral_bandwidth_nm": bands["wavelength"],
+            "bandwidth_average": _bandwidth_average(c, result, curves),
         })
     order = sorted(range(len(entries)),
-                   key=lambda k: -(entries[k]["coupling"].get("beta_c_per_field_m_per_V") or 0.0))
+                   key=lambda k: -(entries[k]["bandwidth_average"]["beta_c_per_field_m_per_V"]
+                                   or 0.0))
     for rank, k in enumerate(order, start=1):
         entries[k]["rank"] = rank
     from designer.cautions import cautions
@@ -415,13 +487,21 @@ def _assemble(candidates, footing, scans) -> dict:
     fields = [e["peak_field_V_per_m"] for e in entries if e["peak_field_V_per_m"] is not None]
     return {"footing": footing, "cautions": cautions(max(fields, default=None)),
             "ranking": [entries[k]["name"] for k in order],
-            "ranked_on": "coupling.beta_c_per_field_m_per_V (descending)",
+            "ranked_on": "bandwidth_average.beta_c_per_field_m_per_V (descending)",
             "candidates": [entries[k] for k in order],
             "definitions": {
                 "tolerance_10nm.worst_ratio": "smallest |beta_c|/|beta_c,0| over ±10 nm "
                                               "changes of each size parameter",
                 "bandwidth": "full width of the range around the nominal value where "
-                             "|beta_c| >= |beta_c,0|/sqrt(2)"},
+                             "|beta_c| >= |beta_c,0|/sqrt(2)",
+                "bandwidth_average": "|beta_c| x the mean of |beta_c|/|beta_c,0| over the "
+                                     "pulse's power spectrum (transform-limited Gaussian "
+                                     "of [laser] duration_fs) x the same over the beam's "
+                                     "angular spectrum (Gaussian beam of [laser] "
+                                     "spot_radius_um, in the plane of incidence); each "
+                                     "ratio is 1 when the spec gives no duration / spot; "
+                                     "the two spreads are averaged separately (a product, "
+                                     "valid while both are narrow)"},
             "provenance": provenance(None, candidates=[e["source"] for e in entries])}
 
 
@@ -461,17 +541,21 @@ def ranking_table(data: dict) -> rp.Table:
     for e in data["candidates"]:
         c = e["coupling"]
         rows.append((str(e["rank"]), e["name"], e["family"], headline(e),
+                     rp.fmt(e["bandwidth_average"]["beta_c"]),
                      rp.fmt(c.get("beta_c_per_field_m_per_V")), rp.fmt(c.get("structure_factor")),
                      rp.fmt(c.get("damage_factor")), _tol_text(e["tolerance_10nm"]),
                      _bw_text(e["angular_bandwidth_deg"]), _bw_text(e["spectral_bandwidth_nm"]),
                      _rules_cell(e)))
         ids.append("candidate-" + "".join(ch if ch.isalnum() else "-" for ch in e["name"]))
-    return rp.Table(columns=("rank", "candidate", "family", "|β_c|", "|β_c| per V/m", "κ",
+    return rp.Table(columns=("rank", "candidate", "family", "|β_c|", "averaged |β_c|",
+                             "|β_c| per V/m", "κ",
                              "damage factor", "worst ±10 nm", "angular width",
                              "spectral width", "design rules"),
                     rows=tuple(rows), highlight=(0,), row_ids=tuple(ids),
-                    caption="Ranked on |β_c| per unit incident field. Widths: full range "
-                            "where |β_c| stays above 1/√2 of its nominal value.")
+                    caption="Ranked on the averaged |β_c| per unit incident field: the "
+                            "nominal coupling times its mean over the pulse's spectrum and "
+                            "the beam's angular spread. Widths: full range where |β_c| "
+                            "stays above 1/√2 of its nominal value.")
 
 
 def _figures(data: dict) -> list[rp.Image]:
@@ -483,11 +567,17 @@ def _figures(data: dict) -> list[rp.Image]:
     fig = Figure(figsize=(max(4.0, 1.2 * len(cands) + 2), 3.2), layout="constrained")
     ax = fig.subplots()
     values = [abs(e["coupling"].get("beta_c") or 0.0) for e in cands]
-    ax.bar(names, values, color=["#0d5c3f"] + ["#1f5f8b"] * (len(cands) - 1))
+    averaged = [abs(e["bandwidth_average"]["beta_c"] or 0.0) for e in cands]
+    x = np.arange(len(cands))
+    ax.bar(x - 0.2, values, 0.4, color="#9bb7cc", label="nominal angle and wavelength")
+    ax.bar(x + 0.2, averaged, 0.4, color=["#0d5c3f"] + ["#1f5f8b"] * (len(cands) - 1),
+           label="averaged over pulse spectrum and beam divergence (ranked)")
+    ax.set_xticks(x, names)
     ax.set_ylabel("|β_c| at the common peak field")
     ax.tick_params(axis="x", rotation=20)
+    ax.legend(fontsize=7)
     out.append(rp.image(fig, "PINEM coupling of each candidate (same beam, laser, grid)",
-                        "bar chart of the coupling of each candidate"))
+                        "bar chart of the nominal and averaged coupling of each candidate"))
     for key, xlabel, what in (("angular_bandwidth_deg", "angle of incidence − nominal (deg)",
                                "angular"),
                               ("spectral_bandwidth_nm", "wavelength − nominal (nm)", "spectral")):
@@ -518,7 +608,8 @@ def compare_report(data: dict) -> rp.Report:
                     f"of {f['from']}; grid step: "
                     + (f"{f['grid_step_nm']:g} nm ({f['grid_step_from']})"
                        if f["grid_step_nm"] is not None else f["grid_step_from"])
-                    + ". The angle and side of incidence stay each candidate's own.")
+                    + ". The angle, side, azimuth and polarization of incidence and the "
+                    "electron path stay each candidate's own.")
     summary = rp.Section("Summary", (
         rp.Facts(((f"best: {best['name']}", f"|β_c| = {headline(best)}"),), headline=True),
         rp.Paragraph(footing_text),
@@ -531,6 +622,7 @@ def compare_report(data: dict) -> rp.Report:
         items = [("|β_c| (headline)", headline(e)),
                  ("source", e["source"]), ("family", e["family"]),
                  ("angle of incidence", rp.fmt(e["angle_deg"], "deg")),
+                 ("averaged |β_c| (ranked)", rp.fmt(e["bandwidth_average"]["beta_c"])),
                  ("|β_c| per V/m", rp.fmt(c.get("beta_c_per_field_m_per_V"), "m/V")),
                  ("structure factor κ", rp.fmt(c.get("structure_factor"))),
                  ("damage factor", rp.fmt(c.get("damage_factor"))),
@@ -572,6 +664,7 @@ def compare_command(args, *, evaluator: Callable = _default_evaluator,
     print(f"compared {len(candidates)} candidate(s) on the footing of {footing['from']}")
     for e in data["candidates"]:
         print(f"  {e['rank']:>2}. {e['name']:<24} |beta_c| = {headline(e):<10} "
+              f"averaged = {rp.fmt(e['bandwidth_average']['beta_c']):<10} "
               f"kappa = {rp.fmt(e['coupling'].get('structure_factor')):<10} "
               f"damage = {rp.fmt(e['coupling'].get('damage_factor'))}")
     print(f"  json: {out_dir / 'compare.json'}\n  report: {html_path}")

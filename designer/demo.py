@@ -340,6 +340,7 @@ def run_grating_study(spec_source: str, out: Path, *, quick: bool,
                                 for k in ("start", "optimized")},
         "design_rule_violations": comp["design_rule_violations"]["optimized"],
         "refined": comp["refined"],
+        "gain": comp.get("gain"),
         "crosscheck": xc,
         "layout": {"file": export["file"], "teeth_gds": teeth_gds,
                    "teeth_expected": round(length / spec.sample.period_m),
@@ -408,6 +409,9 @@ def _grating_report(out: Path, s: dict, design_dir: Path) -> Path:
     facts = (("phase-matched period (m β λ)", f"{s['period_nm']:.2f} nm"),
              ("decay length: closed form βγλ/2π", f"{s['decay_length_closed_form_nm']:.2f} nm"),
              ("decay length: fitted to the coupling", f"{s['decay_length_fitted_nm']:.2f} nm"),
+             ("gain in κ, refined grid (± combined error)",
+              _gain_words(s["gain"]) if (s.get("gain") or {}).get("ratio") is not None
+              else "—"),
              ("FDFD vs Meep (FDTD)", xc_text),
              ("design-rule check", "clean" if not s["design_rule_violations"] else
               f"{len(s['design_rule_violations'])} violation(s)"),
@@ -454,6 +458,15 @@ def output_listing(out: Path) -> list[tuple[str, Path]]:
     return [(k, p) for k, p in items if p.is_file()]
 
 
+def _gain_words(gain: dict) -> str:
+    """The design's gain with its combined error, and whether it is one."""
+    if gain.get("absolute_error") is None:
+        return f"{gain['ratio']:.5g} (no error estimate)"
+    text = f"{gain['ratio']:.5g} +/- {gain['absolute_error']:.2g}"
+    return text + ("" if gain["gain_exceeds_error"] else
+                   " (inside the combined error: not a gain)")
+
+
 def print_closing(out: Path, summary: dict) -> None:
     k = summary["structure_factor"]
     d = summary["damage_factor"]
@@ -462,6 +475,9 @@ def print_closing(out: Path, summary: dict) -> None:
     print(f"  period {summary['period_nm']:.2f} nm (m beta lambda), kappa "
           f"{k['start']:.4g} -> {k['optimized']:.4g}, damage factor {d['start']:.4g} -> "
           f"{d['optimized']:.4g}")
+    gain = summary.get("gain") or {}
+    if gain.get("ratio") is not None:
+        print(f"  gain in kappa on the refined grid: {_gain_words(gain)}")
     print(f"  decay length {summary['decay_length_fitted_nm']:.2f} nm (closed form "
           f"{summary['decay_length_closed_form_nm']:.2f} nm)")
     xc = summary["crosscheck"]

@@ -40,11 +40,16 @@ runs (the continuation changes the loss on purpose): they run their iteration bu
 Outputs in the folder ``--out DIR`` (never reused unless ``--overwrite`` or
 ``--resume``): ``design.toml`` (the optimized design, a complete spec),
 ``evaluation.json`` (``velomatch evaluate design.toml`` reproduces it),
-``refined.json`` (the design at a finer step, with its error estimate),
-``design.png`` (design and fields), ``history.json`` and ``convergence.png``,
-``comparison.json`` / ``comparison.txt`` (start vs optimized) and
+``refined.json`` / ``start_refined.json`` (the design and its start at one finer step,
+with their error estimates), ``design.png`` (design and fields), ``history.json`` and
+``convergence.png``, ``comparison.json`` / ``comparison.txt`` (start vs optimized: the
+start check, every figure with its error, each gain with the combined error) and
 ``checkpoint.json`` (written every ``checkpoint_every`` iterations; ``--resume``
 continues from it, bit-exactly).
+
+A start outside the rules (:func:`start_check`: the design-rule check of the spec's own
+start, and variables outside their bounds) is reported before the run and continues
+from the start moved inside the bounds; the comparison says which start it shows.
 """
 
 from __future__ import annotations
@@ -264,8 +269,11 @@ def automatic_bounds(spec: Spec, variables: dict, bounds: dict, automatic: set
                                     f"duty cycle at the period {period * 1e9:.4g} nm",
                                     "duty_cycle")
         if key not in automatic:
+            if not why and (lo > f_lo * (1 + 1e-12) + 1e-12
+                            or hi < f_hi * (1 - 1e-12) - 1e-12):
+                why.append("fabrication rules")    # bounds_from_rules tightened the pair
             out[key] = (lo, hi)
-            sources[key] = "[optimize] variables" + (f" and {why[0]}" if why else "")
+            sources[key] = "[optimize] variables" + (f" and {', '.join(why)}" if why else "")
             continue
         if lo > f_lo * (1 + 1e-12) + 1e-12 or hi < f_hi * (1 - 1e-12) - 1e-12:
             why.append("fabrication rules")
@@ -332,27 +340,66 @@ def _parse_robust(r: TableReader, spec: Spec) -> tuple[dict, str]:
     return out, aggregate
 
 
-def start_check(spec: Spec, config: DesignConfig) -> dict:
-    """Does the spec's start design keep the rules and the bounds?  ``violations``: the
-    design-rule check of the start and every variable outside its bounds (messages);
-    ``moved``: key -> [start value, value inside the bounds] for the variables that
-    the run moves (clipped into their bounds) before it begins."""
-    from designer.fabrication import design_rule_check
+def start_check(spec: Spec, config: DesignConfig, grid_step_m: float | None = None) -> dict:
+    """Does the spec's own start keep the rules and the bounds, and where does the run
+    begin?
 
-    family = get_family(spec.family)
-    known = family.variables(spec.sample)
-    messages = [v.message for v in design_rule_check(family.features(spec.sample),
-                                                     spec.fabrication)]
-    moved = {}
+    ``design_rules`` / ``violations``: the design-rule verdict of the spec's own start
+    (designer.fabrication.check_design, the check ``export`` enforces, on the grid a
+    free-form pattern lives on: ``grid_step_m``, default the spec's).  ``moved``: for
+    every variable outside its bounds, ``from`` (the spec's value), ``to`` (the nearest
+    bound, where the run starts) and ``why`` (the bound and the rule it comes from);
+    ``outside_bounds`` says the same in words.  ``continues_from`` is ``"spec"`` (the
+    run starts at the spec's own design) or ``"moved"``; ``within_rules`` is true when
+    nothing was found and nothing moved."""
+    from designer.fabrication import check_design
+
+    known = get_family(spec.family).variables(spec.sample)
+    verdict = check_design(spec, grid_step_m=grid_step_m)
+    values = {k: float(known[k][0]) for k in config.keys}
+    moved, words = {}, []
     for key in config.keys:
-        value = float(known[key][0])
+        value = values[key]
         lo, hi = config.bounds[key]
         inside = min(max(value, lo), hi)
-        if inside != value:
-            moved[key] = [value, inside]
-            messages.append(f"sample.{key} = {value:g} is outside its bounds [{lo:g}, "
-                            f"{hi:g}] ({config.bounds_source.get(key, 'bounds')})")
-    return {"violations": messages, "moved": moved}
+        if inside == value:
+            continue
+        side = "lower" if value < lo else "upper"
+        source = config.bounds_source.get(key, "[optimize] variables")
+        why = f"outside [{lo:g}, {hi:g}]: moved to the {side} bound (bounds from {source})"
+        moved[key] = {"from": value, "to": inside, "why": why}
+        words.append(f"sample.{key} = {value:g} is outside its bounds [{lo:g}, {hi:g}] "
+                     f"({source}): the run starts from {inside:g}")
+    return {"within_rules": verdict.clean and not moved,
+            "spec_values": values,
+            "bounds": {k: list(config.bounds[k]) for k in config.keys},
+            "bounds_from": {k: config.bounds_source.get(k, "[optimize] variables")
+                            for k in config.keys},
+            "design_rules": verdict.to_dict(), "violations": verdict.messages,
+            "moved": moved, "outside_bounds": words,
+            "continues_from": "moved" if moved else "spec"}
+
+
+def start_check_lines(check: dict) -> list[str]:
+    """What ``design`` says about a start that breaks the rules (empty when it keeps
+    them)."""
+    if check["within_rules"]:
+        return []
+    n = len(check["violations"])
+    lines = ["warning: the spec's own start is outside the rules"
+             + (f": the design-rule check (the one export applies) finds {n} violation(s)"
+                if n else "")]
+    lines += [f"  {m}" for m in check["violations"][:20]]
+    if n > 20:
+        lines.append(f"  ... and {n - 20} more (comparison.json -> start_check)")
+    lines += [f"  {m}" for m in check["outside_bounds"]]
+    if check["moved"]:
+        moved = ", ".join(f"{k} = {v['to']:g}" for k, v in check["moved"].items())
+        lines.append(f"  the run continues from the start moved inside the bounds ({moved})")
+    else:
+        lines.append("  no variable is outside its bounds: the run starts from the spec's "
+                     "own design")
+    return lines
 
 
 # ---------------------------------------------------------------------------------
@@ -1002,6 +1049,7 @@ class DesignResult:
     best_record: dict
     start_record: dict
     per_start_best: tuple    # (u, record, violations) per start
+    start_check: dict | None = None   # start_check(): the spec's own start against the rules
 
 
 def pattern_record(problem: DesignProblem, u, pattern, multipliers=None) -> dict:
@@ -1099,10 +1147,18 @@ def _read_checkpoint(path: Path) -> dict:
 
 def run_design(spec: Spec, out_dir: str | Path, config: DesignConfig, *, resume: bool = False,
                progress: bool = True,
-               on_iteration: Callable[[StartState], None] | None = None) -> DesignResult:
-    """Optimize (or continue optimizing) and keep ``out_dir/checkpoint.json`` current."""
+               on_iteration: Callable[[StartState], None] | None = None,
+               status: Callable[[str], None] | None = None) -> DesignResult:
+    """Optimize (or continue optimizing) and keep ``out_dir/checkpoint.json`` current.
+
+    Before the first iteration the spec's own start is checked (:func:`start_check`);
+    a start outside the rules is reported through ``status`` (one call per line), then
+    the run continues from the start moved inside the bounds."""
     out = Path(out_dir)
     problem = cached_problem(spec, config)
+    check = start_check(spec, config, problem.grid_step_m)
+    for line in start_check_lines(check):
+        (status or (lambda m: None))(line)
     ck_path = out / CHECKPOINT
     saved = None
     if resume:
@@ -1179,7 +1235,7 @@ def run_design(spec: Spec, out_dir: str | Path, config: DesignConfig, *, resume:
     best = max(clean, key=lambda j: (max(per_start[j][1]["constraints"], default=0.0)
                                      <= FEASIBILITY_TOL, per_start[j][1]["objective"]))
     return DesignResult(problem, tuple(starts), best, per_start[best][0], per_start[best][1],
-                        start_record, tuple(per_start))
+                        start_record, tuple(per_start), check)
 
 
 # ---------------------------------------------------------------------------------
@@ -1236,9 +1292,163 @@ FIGURE_KEYS = (("beta_c_per_field_m_per_V", "|beta_c| per field (m/V)"),
                ("max_field_in_material_V_per_m", "max field in material (V/m)"))
 
 
-def comparison(result: DesignResult, start_eval: dict, design_eval: dict) -> tuple[dict, str]:
-    """Start vs optimized: variables, figures (from evaluate), robust objective, rules."""
+OBJECTIVE_FIGURE = {"coupling": "beta_c_per_field_m_per_V",
+                    "structure_factor": "structure_factor", "damage_factor": "damage_factor"}
+COMBINED_ERROR_RULE = ("root-sum-square of the start's and the optimized design's relative "
+                       "errors (treated as independent): the ratio's relative error")
+MAX_FIELD_ERROR_RULE = ("two grids, first order: |E(h_f) - E(h_c)| / (h_c/h_f - 1) / E(h_f), "
+                        "refined step h_f against the design step h_c (the maximum near "
+                        "rounded corners converges at first order at best)")
+
+
+def _two_grid_error(fine, coarse, ratio) -> float | None:
+    """Relative error of ``fine`` from a result on a grid ``ratio`` times coarser, at
+    first order: ``|fine - coarse| / (ratio - 1) / |fine|`` (Richardson's two-grid
+    estimate with p = 1; L. F. Richardson, Phil. Trans. R. Soc. A 210, 307, 1911)."""
+    if fine in (None, 0) or coarse is None or ratio is None or not ratio > 1.0 + 1e-9:
+        return None
+    return abs(fine - coarse) / (ratio - 1.0) / abs(fine)
+
+
+def figure_errors(refined: dict, coarse: dict) -> dict:
+    """Every comparison figure of ``refined`` (an evaluation JSON at the finer step, with
+    the three-grid estimate) with its error: ``value``, ``relative_error``,
+    ``absolute_error`` and ``error_rule``.
+
+    |beta_c| and kappa = G/E0 carry the coupling's relative error (the length and E0 are
+    exact); E_max carries :data:`MAX_FIELD_ERROR_RULE` from ``coarse`` (the same design
+    at the design step); G/E_max their root-sum-square.  Exact layer-stack results
+    carry 0.  A figure without an estimate carries None."""
+    c, cc = refined["coupling"], coarse["coupling"]
+    solver = refined.get("provenance", {}).get("solver")
+    h_f = refined.get("provenance", {}).get("grid_step_m")
+    h_c = coarse.get("provenance", {}).get("grid_step_m")
+    ratio = h_c / h_f if (h_f and h_c) else None
+    e_key = "max_field_in_material_V_per_m"
+    if solver == "layers":
+        rel_i, rule_i = 0.0, "exact layer-stack solution"
+        rel_e, rule_e = (0.0 if c.get(e_key) is not None else None), rule_i
+    else:
+        rel_i = c.get("relative_error_estimate")
+        rule_i = "the coupling's error estimate: " + str(
+            (c.get("error_estimate") or {}).get("note") or "three grids (Richardson)")
+        if rel_i is None:
+            key = "beta_c_per_field_m_per_V"
+            rel_i = _two_grid_error(c.get(key), cc.get(key), ratio)
+            rule_i = ("no three-grid estimate; two grids, first order: |b(h_f) - b(h_c)| / "
+                      "(h_c/h_f - 1) / b(h_f)" if rel_i is not None else "no estimate")
+        rel_e = _two_grid_error(c.get(e_key), cc.get(e_key), ratio)
+        rule_e = MAX_FIELD_ERROR_RULE if rel_e is not None else "no estimate"
+    both = None if rel_i is None or rel_e is None else math.hypot(rel_i, rel_e)
+    errors = {"beta_c_per_field_m_per_V": (rel_i, rule_i), "structure_factor": (rel_i, rule_i),
+              e_key: (rel_e, rule_e),
+              "damage_factor": (both, "root-sum-square of the coupling's and E_max's "
+                                "relative errors")}
+    rows = {}
+    for key, _ in FIGURE_KEYS:
+        value = c.get(key)
+        rel, rule = errors[key]
+        if value is None:
+            rel = None
+        rows[key] = {"value": value, "relative_error": rel,
+                     "absolute_error": None if rel is None else abs(value) * rel,
+                     "error_rule": rule if value is not None else "not computed"}
+    return rows
+
+
+def gain_of(start: dict, optimized: dict) -> dict:
+    """Optimized over start (rows of :func:`figure_errors`) with the combined error
+    (:data:`COMBINED_ERROR_RULE`); ``gain_exceeds_error``: |ratio - 1| is larger than
+    the ratio's absolute error (None when a value or an error is missing)."""
+    a, b = start["value"], optimized["value"]
+    out = {"ratio": None, "relative_error": None, "absolute_error": None,
+           "combined_error": COMBINED_ERROR_RULE, "gain_exceeds_error": None}
+    if a in (None, 0) or b is None:
+        return out
+    out["ratio"] = r = b / a
+    ra, rb = start["relative_error"], optimized["relative_error"]
+    if ra is not None and rb is not None:
+        rel = math.hypot(ra, rb)
+        out.update(relative_error=rel, absolute_error=abs(r) * rel,
+                   gain_exceeds_error=bool(abs(r - 1.0) > abs(r) * rel))
+    return out
+
+
+def gain_warning(label: str, gain: dict) -> str | None:
+    """The warning ``design`` prints about the gain of a figure where more is better
+    (the objectives), or None when it is a gain."""
+    r = gain["ratio"]
+    if r is None:
+        return None
+    if gain["gain_exceeds_error"] is None:
+        return (f"warning: {label}: no error estimate on the refined grid, so the ratio "
+                f"{r:.5g} cannot be told from the discretization error")
+    err = f"{r:.5g} +/- {gain['absolute_error']:.2g}"
+    if not gain["gain_exceeds_error"]:
+        return (f"warning: the gain in {label} on the refined grid, {err}, is inside the "
+                "combined error estimate: it is not a gain (refine the grid, [solver] "
+                "grid_step_nm, or change the variables)")
+    if r < 1.0:
+        return f"warning: the optimized design is worse than the start in {label}: {err}"
+    return None
+
+
+def refined_comparison(start_refined: dict, start_coarse: dict, design_refined: dict,
+                       design_coarse: dict, objective: str) -> dict:
+    """Start and optimized design on the refined grid, every figure with its error
+    (:func:`figure_errors`), each ratio with the combined error (:func:`gain_of`), and
+    the warning for the objective's figure (:func:`gain_warning`)."""
+    s = figure_errors(start_refined, start_coarse)
+    o = figure_errors(design_refined, design_coarse)
+    figures = {key: {"start": s[key], "optimized": o[key], "gain": gain_of(s[key], o[key])}
+               for key, _ in FIGURE_KEYS}
+    key = OBJECTIVE_FIGURE[objective]
+    label = dict(FIGURE_KEYS)[key]
+    warning = gain_warning(label, figures[key]["gain"])
+    return {"grid_step_m": {"start": start_refined.get("provenance", {}).get("grid_step_m"),
+                            "optimized": design_refined.get("provenance", {})
+                            .get("grid_step_m")},
+            "figures": figures,
+            "gain": {"figure": key, **figures[key]["gain"], "warning": warning},
+            "warnings": [warning] if warning else []}
+
+
+def _pm(row: dict) -> str:
+    if row["value"] is None:
+        return "n/a"
+    if row["relative_error"] is None:
+        return f"{row['value']:.5g} +/- ?"
+    if row["relative_error"] == 0:
+        return f"{row['value']:.5g} (exact)"
+    return f"{row['value']:.5g} +/- {100 * row['relative_error']:.2g}%"
+
+
+def _gain_text(g: dict) -> str:
+    if g["ratio"] is None:
+        return "n/a"
+    if g["absolute_error"] is None:
+        return f"{g['ratio']:.5g} +/- ?"
+    inside = "" if g["gain_exceeds_error"] else " (inside error)"
+    if g["absolute_error"] == 0:
+        return f"{g['ratio']:.5g} (exact){inside}"
+    return f"{g['ratio']:.5g} +/- {g['absolute_error']:.2g}{inside}"
+
+
+def start_label(check: dict | None) -> str:
+    """Which design the comparison's start column is."""
+    if check is None or not check["moved"]:
+        return "the spec's own start"
+    moved = ", ".join(f"{k} {v['from']:g} -> {v['to']:g}" for k, v in check["moved"].items())
+    return f"the spec's start moved inside the bounds ({moved})"
+
+
+def comparison(result: DesignResult, start_eval: dict, design_eval: dict,
+               refined: dict | None = None) -> tuple[dict, str]:
+    """Start vs optimized: variables, figures (from evaluate), robust objective, rules,
+    the start check and (``refined``: :func:`refined_comparison`) every figure with its
+    error on the refined grid."""
     p = result.problem
+    check = result.start_check or start_check(p.spec, p.config, p.grid_step_m)
     start_values = p.values_of(opt.to_unit(p.x_start, p.box))
     best_values = p.values_of(result.best_u)
     figures = {}
@@ -1246,11 +1456,24 @@ def comparison(result: DesignResult, start_eval: dict, design_eval: dict) -> tup
         a, b = start_eval["coupling"].get(key), design_eval["coupling"].get(key)
         figures[key] = {"start": a, "optimized": b,
                         "ratio": (b / a) if (a not in (None, 0) and b is not None) else None}
+        if refined is not None:
+            r = refined["figures"][key]
+            figures[key]["refined"] = {
+                "start": r["start"], "optimized": r["optimized"], "ratio": r["gain"]["ratio"],
+                "ratio_relative_error": r["gain"]["relative_error"],
+                "ratio_absolute_error": r["gain"]["absolute_error"],
+                "combined_error": r["gain"]["combined_error"],
+                "gain_exceeds_error": r["gain"]["gain_exceeds_error"]}
+            figures[key]["gain_exceeds_error"] = r["gain"]["gain_exceeds_error"]
     data = {
         "objective": p.config.objective, "aggregate": p.config.aggregate,
         "scenarios": [m.scenario.label for m in p.models],
+        "start_design": {"kind": check["continues_from"], "label": start_label(check),
+                         "values": start_values},
+        "start_check": check,
         "variables": {k: {"start": start_values[k], "optimized": best_values[k],
-                          "bounds": list(p.config.bounds[k])} for k in p.config.keys},
+                          "bounds": list(p.config.bounds[k]),
+                          "spec_start": check["spec_values"].get(k)} for k in p.config.keys},
         "optimizer_objective": {"start": result.start_record["objective"],
                                 "optimized": result.best_record["objective"],
                                 "start_scenarios": result.start_record["scenarios"],
@@ -1259,31 +1482,60 @@ def comparison(result: DesignResult, start_eval: dict, design_eval: dict) -> tup
         "design_rule_violations": {
             "start": _violations(p, opt.to_unit(p.x_start, p.box),
                                  p.start_pattern() if p.chain is not None else None),
+            "spec_start": check["violations"],
             "optimized": _violations(p, result.best_u)},
         "best_start": result.best_start,
         "starts": [{"index": st.index, "iterations": len(st.losses), "stopped": st.reason,
                     "best_objective": rec["objective"], "violations": v}
                    for st, (_, rec, v) in zip(result.starts, result.per_start_best)],
     }
+    if refined is not None:
+        data["gain"] = refined["gain"]
+        data["warnings"] = list(refined["warnings"])
     if p.chain is not None:
         data["freeform"] = freeform_summary(result)
     lines = [f"design: {p.spec.family}, objective {p.config.objective}"
              + (f" ({p.config.aggregate} of {len(p.models)} scenarios)" if len(p.models) > 1
                 else ""),
-             "", f"  {'variable':28s} {'start':>12s} {'optimized':>12s}   bounds"]
+             f"start: {start_label(check)}"]
+    if not check["within_rules"]:
+        lines += [""] + start_check_lines(check)
+    head = "start (moved)" if check["moved"] else "start (spec)"
+    lines += ["", f"  {'variable':28s} {head:>13s} {'optimized':>12s}   bounds"]
     for k in p.config.keys:
         lo, hi = p.config.bounds[k]
-        lines.append(f"  {k:28s} {start_values[k]:12.5g} {best_values[k]:12.5g}   "
+        lines.append(f"  {k:28s} {start_values[k]:13.5g} {best_values[k]:12.5g}   "
                      f"[{lo:g}, {hi:g}]")
-    lines += ["", f"  {'figure':36s} {'start':>12s} {'optimized':>12s} {'ratio':>8s}"]
+    fmt = lambda v: "n/a" if v is None else f"{v:.5g}"  # noqa: E731
+    if refined is not None:
+        h = refined["grid_step_m"]
+        steps = sorted({v for v in h.values() if v})
+        where = ("on the refined grid (step " + " / ".join(f"{v * 1e9:.4g}" for v in steps)
+                 + " nm)" if steps else "exact layer-stack solutions")
+        lines += ["", f"  {where}, every figure +/- its error estimate; gain +/- the "
+                  "combined error",
+                  f"  {'figure':30s} {head:>24s} {'optimized':>24s}   gain"]
+        for key, label in FIGURE_KEYS:
+            r = refined["figures"][key]
+            if r["start"]["value"] is None and r["optimized"]["value"] is None:
+                continue
+            lines.append(f"  {label:30s} {_pm(r['start']):>24s} {_pm(r['optimized']):>24s}   "
+                         f"{_gain_text(r['gain'])}")
+        lines += [f"  {w}" for w in refined["warnings"]]
+    own = check.get("spec_start_figures")
+    if own:
+        lines += ["", "  the spec's own start (outside the rules), on the design grid: "
+                  + ", ".join(f"{label} {fmt(own.get(key))}" for key, label in FIGURE_KEYS
+                              if own.get(key) is not None)]
+    lines += ["", "  on the design grid (evaluation.json)",
+              f"  {'figure':36s} {head:>13s} {'optimized':>12s} {'ratio':>8s}"]
     for key, label in FIGURE_KEYS:
         f = figures[key]
         if f["start"] is None and f["optimized"] is None:
             continue
-        fmt = lambda v: "n/a" if v is None else f"{v:.5g}"  # noqa: E731
-        lines.append(f"  {label:36s} {fmt(f['start']):>12s} {fmt(f['optimized']):>12s} "
+        lines.append(f"  {label:36s} {fmt(f['start']):>13s} {fmt(f['optimized']):>12s} "
                      f"{fmt(f['ratio']):>8s}")
-    lines.append(f"  {'optimizer objective':36s} {result.start_record['objective']:12.5g} "
+    lines.append(f"  {'optimizer objective':36s} {result.start_record['objective']:13.5g} "
                  f"{result.best_record['objective']:12.5g}")
     v = data["design_rule_violations"]["optimized"]
     if p.chain is not None:
@@ -1328,9 +1580,55 @@ def freeform_summary(result: DesignResult) -> dict:
             "pattern_violations": [v.message for v in pattern_violations(p, pattern)]}
 
 
-OUTPUT_FILES = ("design.toml", "density.npy", "evaluation.json", "refined.json", "design.png",
+OUTPUT_FILES = ("design.toml", "density.npy", "evaluation.json", "refined.json",
+                "start_refined.json", "design.png",
                 "history.json", "convergence.png", "comparison.json", "comparison.txt",
                 "report.html", CHECKPOINT)
+
+
+def start_spec(spec: Spec, check: dict) -> Spec:
+    """The design the run starts from, as a spec: the spec itself, or (when
+    :func:`start_check` moved variables into their bounds) the spec with the moved
+    values."""
+    if not check["moved"]:
+        return spec
+    from designer.spec import parse_spec
+
+    values = {**check["spec_values"], **{k: m["to"] for k, m in check["moved"].items()}}
+    params = get_family(spec.family).replace(spec.sample, values)
+    return parse_spec(design_raw(spec, params), source=spec.source, base_dir=spec.base_dir)
+
+
+def refined_evaluation(spec: Spec, ev, coarse: dict, fine_step_m: float | None, factor: float,
+                       what: str, say) -> dict:
+    """The evaluation JSON of ``spec`` at the finer step with its error estimate (FDFD:
+    three grids; Fourier modal: N against N + 2 orders; layer stacks: exact, ``ev``, whose
+    evaluation JSON is ``coarse``).
+
+    Its ``design_rules`` are those of ``coarse`` (the design's own grid): a free-form
+    pattern is made for that grid, and resampling it onto a finer one may tilt column
+    edges that are straight on its own."""
+    from designer.evaluate import evaluate, evaluation_json
+
+    if ev.solver == "fdfd":
+        say(f"re-evaluating the {what} design at {fine_step_m * 1e9:.3g} nm with the error "
+            "estimate (three grids)")
+        out = evaluation_json(evaluate(spec, grid_step_m=fine_step_m, refine=True,
+                                       progress=say))
+        out["design_rules"] = coarse["design_rules"]
+        out = vio.require_finite(out)
+        out["note"] = (f"step {fine_step_m:.4g} m = the finer of the start's and the design's "
+                       f"evaluation steps / {factor:g}; relative_error_estimate from solves at "
+                       "about 1.5x and 2.25x that step (three-grid Richardson with the "
+                       "observed order)")
+    elif ev.solver == "fmm":
+        say(f"re-evaluating the {what} design with the Fourier-order error estimate")
+        out = vio.require_finite(evaluation_json(evaluate(spec, refine=True, progress=say)))
+        out["note"] = "Fourier modal method: relative_error_estimate compares N with N + 2 orders"
+    else:
+        out = dict(coarse)
+        out["note"] = "exact layer-stack solution: no finer grid exists (error 0)"
+    return out
 
 
 def write_outputs(result: DesignResult, out_dir: str | Path, *, status=None) -> dict:
@@ -1365,25 +1663,40 @@ def write_outputs(result: DesignResult, out_dir: str | Path, *, status=None) -> 
     design_eval = vio.require_finite(evaluation_json(ev), str(out / "design.toml"))
     vio.write_json(out / "evaluation.json", design_eval)
     vio.save_figure(evaluation_figure(ev), out / "design.png")
-    if ev.solver == "fdfd":
-        fine = ev.run.grid_step_m / p.config.refine_factor
-        say(f"re-evaluating at {fine * 1e9:.3g} nm")
-        refined = vio.require_finite(evaluation_json(evaluate(design_spec, grid_step_m=fine,
-                                                            refine=True)))
-        refined["note"] = (f"step {fine:.4g} m = evaluation step / {p.config.refine_factor:g}; "
-                           "relative_error_estimate from solves at about 1.5x and 2.25x that step "
-                           "(three-grid Richardson with the observed order)")
-    else:
-        refined = dict(design_eval)
-        refined["note"] = "exact layer-stack solution: no finer grid exists (error 0)"
+    check = result.start_check or start_check(spec, p.config, p.grid_step_m)
+    begin = start_spec(spec, check)
+    say("evaluating the start design" + (" (moved inside the bounds)" if check["moved"]
+                                         else ""))
+    start_ev = evaluate(begin, refine=False)
+    start_eval = vio.require_finite(evaluation_json(start_ev))
+    if check["moved"]:
+        own = vio.require_finite(evaluation_json(evaluate(spec, refine=False)))["coupling"]
+        check = {**check, "spec_start_figures": {k: own.get(k) for k, _ in FIGURE_KEYS}}
+        result = dataclasses.replace(result, start_check=check)
+    # both designs are re-evaluated at the same requested finer step, with the
+    # three-grid error estimate
+    steps = [e.run.grid_step_m for e in (ev, start_ev) if e.run.grid_step_m]
+    fine = min(steps) / p.config.refine_factor if steps else None
+    refined = refined_evaluation(design_spec, ev, design_eval, fine, p.config.refine_factor,
+                                 "optimized", say)
     vio.write_json(out / "refined.json", refined)
-    say("evaluating the start design")
-    start_eval = vio.require_finite(evaluation_json(evaluate(spec, refine=False)))
-    data, text = comparison(result, start_eval, design_eval)
+    start_refined = refined_evaluation(begin, start_ev, start_eval, fine,
+                                       p.config.refine_factor, "start", say)
+    vio.write_json(out / "start_refined.json", start_refined)
+    errors = refined_comparison(start_refined, start_eval, refined, design_eval,
+                                p.config.objective)
+    for warning in errors["warnings"]:
+        say(warning)
+    data, text = comparison(result, start_eval, design_eval, errors)
     data["refined"] = {"grid_step_m": refined["provenance"].get("grid_step_m"),
                        "beta_c_per_field_m_per_V":
                            refined["coupling"]["beta_c_per_field_m_per_V"],
-                       "relative_error_estimate": refined["coupling"]["relative_error_estimate"]}
+                       "relative_error_estimate": refined["coupling"]["relative_error_estimate"],
+                       "start": {"grid_step_m": start_refined["provenance"].get("grid_step_m"),
+                                 "beta_c_per_field_m_per_V":
+                                     start_refined["coupling"]["beta_c_per_field_m_per_V"],
+                                 "relative_error_estimate":
+                                     start_refined["coupling"]["relative_error_estimate"]}}
     vio.write_json(out / "comparison.json", data)
     vio.write_atomic(out / "comparison.txt", text + "\n")
     history = {"objective": p.config.objective, "aggregate": p.config.aggregate,
@@ -1398,46 +1711,65 @@ def write_outputs(result: DesignResult, out_dir: str | Path, *, status=None) -> 
     vio.save_figure(convergence_figure(result), out / "convergence.png")
     say("writing the report")
     write_design_report(out / "report.html", result, ev, design_eval, start_eval, refined,
-                        text)
+                        text, comparison_data=data)
     return data
 
 
 def write_design_report(path, result: DesignResult, ev, design_eval: dict, start_eval: dict,
-                        refined: dict, comparison_text: str) -> Path:
-    """``DIR/report.html``: the optimized design's figures, start vs optimized, the
-    finer-grid check, the convergence plot and the design picture (self-contained)."""
+                        refined: dict, comparison_text: str, *,
+                        comparison_data: dict | None = None) -> Path:
+    """``DIR/report.html``: the optimized design's figures, the start check, start
+    against optimized on the refined grid with error bars, the convergence plot and
+    the design picture (self-contained)."""
     from designer import report as rp
     from designer.plots import evaluation_figure
 
     cfg = result.problem.config
+    comp = comparison_data or {}
+    figures = comp.get("figures", {})
+    with_errors = all("refined" in figures.get(k, {}) for k, _ in FIGURE_KEYS) and figures
 
     def row(label, key):
+        if with_errors:
+            r = figures[key]["refined"]
+            return (label, _pm(r["start"]), _pm(r["optimized"]),
+                    _gain_text({"ratio": r["ratio"], "absolute_error": r["ratio_absolute_error"],
+                                "gain_exceeds_error": r["gain_exceeds_error"]}))
         return (label, rp.fmt(start_eval["coupling"].get(key)),
                 rp.fmt(design_eval["coupling"].get(key)))
 
-    table = rp.Table(("figure", "start", "optimized"),
-                     (row("|beta_c| per field (m/V)", "beta_c_per_field_m_per_V"),
-                      row("structure factor G/E0", "structure_factor"),
-                      row("damage factor G/E_max", "damage_factor"),
-                      row("max field in material (V/m)", "max_field_in_material_V_per_m")),
-                     caption="start design against the optimized design (same solver)",
-                     highlight=(0,))
-    check = rp.Facts((("finer-grid |beta_c| per field",
+    check = comp.get("start_check") or result.start_check
+    start_name = start_label(check)
+    head = "start (moved)" if check is not None and check["moved"] else "start (spec)"
+    columns = (("figure", head, "optimized", "gain (optimized / start)") if with_errors
+               else ("figure", head, "optimized"))
+    caption = (f"start ({start_name}) against the optimized design, both on the refined "
+               "grid; each figure +/- its error estimate, each gain +/- the combined error "
+               "(root-sum-square of the relative errors)" if with_errors else
+               f"start ({start_name}) against the optimized design (same solver)")
+    table = rp.Table(columns, tuple(row(label, key) for key, label in FIGURE_KEYS),
+                     caption=caption, highlight=(0,))
+    facts = rp.Facts((("finer-grid |beta_c| per field",
                        rp.fmt(refined["coupling"]["beta_c_per_field_m_per_V"], "m/V")),
                       ("its relative error estimate",
                        rp.fmt(refined["coupling"]["relative_error_estimate"])),
                       ("objective", cfg.objective), ("method", cfg.method),
                       ("variables", ", ".join(cfg.keys))))
-    sections = (rp.evaluation_section(design_eval, "Optimized design"),
-                rp.Section("Start against optimized", (table, check,
-                                                       rp.Paragraph(comparison_text, "note"))),
-                rp.Section("Design and fields", (rp.image(evaluation_figure(ev),
-                                                          "optimized sample and its field"),)),
-                rp.Section("Convergence", (rp.image(convergence_figure(result),
-                                                    "objective per iteration"),)))
+    blocks = [table]
+    blocks += [rp.Paragraph(w) for w in comp.get("warnings", [])]
+    blocks += [facts, rp.Paragraph(comparison_text, "note")]
+    sections = [rp.evaluation_section(design_eval, "Optimized design")]
+    if check is not None and not check["within_rules"]:
+        sections.append(rp.Section("The start is outside the rules", tuple(
+            [rp.Paragraph(line.strip()) for line in start_check_lines(check)])))
+    sections += [rp.Section("Start against optimized", tuple(blocks)),
+                 rp.Section("Design and fields", (rp.image(evaluation_figure(ev),
+                                                           "optimized sample and its field"),)),
+                 rp.Section("Convergence", (rp.image(convergence_figure(result),
+                                                     "objective per iteration"),))]
     name = Path(result.problem.spec.source).name
     rep = rp.Report(f"Design from {name}", subtitle=f"{result.problem.spec.family} sample",
-                    sections=sections, provenance=design_eval.get("provenance"))
+                    sections=tuple(sections), provenance=design_eval.get("provenance"))
     return rp.write_report(path, rep)
 
 
@@ -1463,7 +1795,8 @@ def design_command(args) -> int:
         print(f"  {message}", file=sys.stderr, flush=True)
 
     print(f"designing {args.spec} -> {out}", file=sys.stderr)
-    result = run_design(spec, out, config, resume=getattr(args, "resume", False))
+    result = run_design(spec, out, config, resume=getattr(args, "resume", False),
+                        status=status)
     write_outputs(result, out, status=status)
     print((out / "comparison.txt").read_text(), end="")
     return 0

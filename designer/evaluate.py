@@ -66,6 +66,7 @@ class PathCoupling:
     spot_z_m: np.ndarray | None = None  # paths along x: heights across the electron spot
     spot_z_integral_V: np.ndarray | None = None
     spot_fraction: float | None = None  # share of the spot's current in the clear gap
+    fmm_solution: Any = None           # solvers.fmm.FMMSolution (fmm runs)
 
 
 @dataclass(frozen=True)
@@ -517,9 +518,11 @@ def evaluate(spec: Spec, *, grid_step_m: float | None = None, refine: bool | Non
     refine = spec.solver.refine if refine is None else refine
     error_info = {}
     fmm_extra = {}
+    holes_e_max_rule = None
     if method == "fmm":
         from designer import holes
 
+        holes_e_max_rule = holes.e_max_rule
         run, study, sol = holes.run_fmm(spec, refine=refine, progress=say)
         rel_error = study.relative_error
         solver = "fmm"
@@ -562,13 +565,16 @@ def evaluate(spec: Spec, *, grid_step_m: float | None = None, refine: bool | Non
     else:
         bottom, top = layout.structure_z_m
         gradient_length = open_path_length(spec, angle, max(top - bottom, 0.0))
+    if solver == "layers":
+        e_max_rule = "planar stack: no corners"
+    elif solver == "fmm":
+        e_max_rule = holes_e_max_rule(spec, fmm_extra["fourier_orders"])
+    else:
+        e_max_rule = f"{CORNER_RULE} ({spec.fabrication.corner_radius_m * 1e9:g} nm)"
     return Evaluation(spec=spec, solver=solver, angle_rad=angle, peak_field_V_per_m=e0,
                       omega=omega, run=run, relative_error=rel_error,
                       interaction_length_m=interaction, gradient_length_m=gradient_length,
-                      e_max_rule=("planar stack: no corners" if solver == "layers" else
-                                  "not computed by the Fourier modal method" if solver == "fmm"
-                                  else f"{CORNER_RULE} "
-                                  f"({spec.fabrication.corner_radius_m * 1e9:g} nm)"),
+                      e_max_rule=e_max_rule,
                       **fmm_extra, **error_info)
 
 

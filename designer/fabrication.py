@@ -614,8 +614,14 @@ class Finding:
                 f"{self.measured_m * 1e9:.1f} nm, {relation} {self.limit_m * 1e9:.1f} nm")
 
     def to_dict(self) -> dict:
-        return {"plane": self.plane, "rule": self.rule, "measured_m": self.measured_m,
-                "limit_m": self.limit_m, "location_m": list(self.location_m),
+        # a finding without a size (etch, region, material) stores null, not NaN: the
+        # JSON stays standard and the finite-result check does not mistake it for a
+        # failed solve
+        def size(v):
+            return v if math.isfinite(v) else None
+
+        return {"plane": self.plane, "rule": self.rule, "measured_m": size(self.measured_m),
+                "limit_m": size(self.limit_m), "location_m": list(self.location_m),
                 "description": self.description, "message": self.message}
 
 

@@ -255,16 +255,124 @@ def run_fmm(spec, *, refine: bool | None = None, with_map: bool = True,
         map_i = np.array([complex(np.asarray(fmm.coupling_integral(
             sol, point=path_point(spec, x_m=float(x), y_m=y), direction=direction,
             velocity=v, z_ref=z_ref))) for x in map_x])
-    e_max = None
-    if hasattr(fmm, "max_field_in_layer"):
-        from designer.families import membrane
-
-        k = len(spec.sample.layers_below)
-        e_max = float(np.asarray(fmm.max_field_in_layer(sol, k)))
-        del membrane
+    e_max = max_field_in_material(spec, sol, study.chosen)
     run = PathCoupling(integral_V=complex(integral), max_field_in_material=e_max,
-                       grid_step_m=None, layout=layout, map_x_m=map_x, map_integral_V=map_i)
+                       grid_step_m=None, layout=layout, map_x_m=map_x, map_integral_V=map_i,
+                       fmm_solution=sol)
     return run, study, sol
+
+
+# ------------------------------------------------------------------ largest field
+E_MAX_SAMPLES = 40        # lateral samples per lattice direction
+E_MAX_PLANES_PER_WAVELENGTH = 40   # heights per wavelength in the material (faces included)
+
+
+def edge_band_m(spec, orders: int) -> float:
+    """Width of the band along hole walls left out of the field maximum:
+    ``max(corner_radius, P / (2N + 1))``.  Within about one resolution length of the
+    truncated series the in-plane field normal to the wall rings (Gibbs), and where the
+    wall meets a face the field of a sharp rim is singular; real rims are rounded (the
+    corner rule of designer.evaluate)."""
+    p = spec.sample
+    corner = spec.fabrication.corner_radius_m
+    if p.holes is not None:
+        return max(corner, p.holes.period_m / (2 * int(orders) + 1))
+    if p.pattern == "slits":
+        return max(corner, p.period_m / (2 * int(orders) + 1))
+    return corner
+
+
+def e_max_rule(spec, orders: int) -> str:
+    """The sampling rule behind the reported largest field (JSON ``max_field_rule``)."""
+    return (f"|E| of the Fourier series on {E_MAX_SAMPLES}x{E_MAX_SAMPLES} points per cell "
+            f"x {E_MAX_PLANES_PER_WAVELENGTH} heights per wavelength in material; points within "
+            f"{edge_band_m(spec, orders) * 1e9:.3g} nm of a hole/slit wall or rim left out "
+            "(max(corner_radius, P/(2N+1)): Gibbs ringing of the truncated series and the "
+            "singular field at sharp rims)")
+
+
+def openings(spec, x, y):
+    """``(inside, wall)`` at lateral points (m): True where (x, y) is in a hole or slit,
+    and the lateral distance to the nearest wall (m; ellipses: ``|rho - 1| min(a, b)``
+    with rho the scaled radius, an estimate; unpatterned films: inf)."""
+    p = spec.sample
+    x, y = np.asarray(x, dtype=float), np.asarray(y, dtype=float)
+    inside = np.zeros(x.shape, dtype=bool)
+    wall = np.full(x.shape, np.inf)
+    h = p.holes
+    if h is not None:
+        P = h.period_m
+        a2 = h.a2
+        a, b = h.semi_axes_m
+        c, s = math.cos(h.angle_rad), math.sin(h.angle_rad)
+        for i in (-1, 0, 1):
+            for j in (-1, 0, 1):
+                dx, dy = x - (i * P + j * a2[0]), y - j * a2[1]
+                u, v = c * dx + s * dy, -s * dx + c * dy
+                rho = np.sqrt((u / a) ** 2 + (v / b) ** 2)
+                inside |= rho < 1.0
+                wall = np.minimum(wall, np.abs(rho - 1.0) * min(a, b))
+    elif p.pattern == "slits":
+        P = p.period_m
+        for w, c in zip(p.slit_widths_m, p.slit_centers_m):
+            d = np.abs((x - c + 0.5 * P) % P - 0.5 * P)      # distance to the slit centre
+            inside |= d < 0.5 * w
+            wall = np.minimum(wall, np.abs(d - 0.5 * w))
+    return inside, wall
+
+
+def cell_points(spec, sol, samples: int = E_MAX_SAMPLES):
+    """Lateral sample points (x, y) (m) filling one unit cell of the solution's lattice."""
+    a1, a2 = (np.asarray(v, dtype=float) for v in sol.lattice.vectors())
+    u = (np.arange(samples) + 0.5) / samples - 0.5
+    uu, vv = np.meshgrid(u, u, indexing="ij")
+    return (uu * a1[0] + vv * a2[0]).ravel(), (uu * a1[1] + vv * a2[1]).ravel()
+
+
+def max_field_in_material(spec, sol, orders: int) -> float | None:
+    """Largest |E| (per V/m incident) in the material of the stack, sampled on
+    ``E_MAX_SAMPLES^2`` lateral points x ``E_MAX_PLANES_PER_WAVELENGTH`` heights per
+    wavelength in the medium, in every layer with eps != 1 and in a material half-space
+    below down to one wavelength; points within :func:`edge_band_m` of a hole wall (or,
+    in the neighbouring layers, of its rim) are left out.  None when no material point remains."""
+    from designer.families.membrane import stack_layers
+    from solvers.fmm.fields import field_magnitude, medium_bounds
+
+    x, y = cell_points(spec, sol)
+    band = edge_band_m(spec, orders)
+    hole_pts, wall = openings(spec, x, y)
+    _, rows, _ = stack_layers(spec.sample)
+    film_j = 1 + len(spec.sample.layers_below)
+    z_film = medium_bounds(sol, film_j)
+    lam = spec.laser.wavelength_m
+    best = None
+    for j in range(len(sol.media)):
+        zb, zt = medium_bounds(sol, j)
+        if j == 0:
+            eps = complex(np.asarray(sol.eps_below))
+            zb = zt - lam
+        elif j == len(sol.media) - 1:
+            eps = complex(np.asarray(sol.eps_above))
+            zt = zb + lam
+        else:
+            e = rows[j - 1][1]
+            eps = spec.sample.material.eps if e == "film" else complex(e)
+        if abs(eps - 1.0) < 1e-12 or zt <= zb:
+            continue
+        n = abs(np.sqrt(eps))
+        z = np.linspace(zb, zt, max(5, math.ceil(E_MAX_PLANES_PER_WAVELENGTH * n * (zt - zb)
+                                                 / lam) + 1))
+        mag = field_magnitude(sol, j, x, y, z)                 # (Z, P)
+        if j == film_j:
+            keep = np.broadcast_to(~hole_pts & (wall >= band), mag.shape)
+        else:
+            # distance to the nearer rim of the patterned layer
+            dz = np.minimum(np.abs(z - z_film[0]), np.abs(z - z_film[1]))[:, None]
+            keep = np.sqrt(wall[None, :] ** 2 + dz ** 2) >= band
+        if keep.any():
+            m = float(np.max(mag[keep]))
+            best = m if best is None else max(best, m)
+    return best
 
 
 def spot_average(spec, sol):

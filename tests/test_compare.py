@@ -163,3 +163,89 @@ def _real():
     from designer.evaluate import evaluate_raw
 
     return evaluate_raw
+
+
+def test_laser_spreads_of_a_100_fs_pulse_and_a_20_um_spot():
+    """Transform-limited Gaussian, 100 fs at 800 nm: dlambda = 0.4413 lambda²/(c tau)
+    = 9.42 nm (A. E. Siegman, Lasers, 1986, ch. 9); Gaussian beam of w0 = 20 um:
+    theta0 = lambda/(pi w0) = 12.73 mrad (Siegman ch. 17)."""
+    from designer.compare import laser_spreads
+
+    s = laser_spreads({"laser": {"wavelength_nm": 800.0, "duration_fs": 100.0,
+                                 "spot_radius_um": 20.0}})
+    assert s["spectral_fwhm_nm"] == pytest.approx(9.42, abs=0.01)
+    assert math.radians(s["angular_half_width_deg"]) == pytest.approx(12.73e-3, rel=1e-3)
+    assert laser_spreads({"laser": {"wavelength_nm": 800.0}}) == {
+        "spectral_fwhm_nm": None, "angular_half_width_deg": None}
+
+
+def test_spread_average_of_a_gaussian_response_is_the_closed_form():
+    """A Gaussian response exp(-x²/2s²) averaged over a Gaussian of rms sigma is
+    s/sqrt(s² + sigma²) (Gaussian convolution, closed form)."""
+    from designer.compare import spread_average
+
+    s = 2.0
+    x = np.linspace(-30.0, 30.0, 2001)
+    curve = list(zip(x, np.exp(-x**2 / (2 * s**2))))
+    fwhm = 3.0
+    sigma = fwhm / (2 * math.sqrt(2 * math.log(2)))
+    assert spread_average(curve, fwhm, "spectral") == pytest.approx(
+        s / math.hypot(s, sigma), rel=1e-3)
+    theta0 = 1.5                                  # 1/e² half-angle: rms theta0 / 2
+    assert spread_average(curve, theta0, "angular") == pytest.approx(
+        s / math.hypot(s, theta0 / 2), rel=1e-3)
+    assert spread_average(curve, None, "angular") == 1.0
+
+
+def test_ranking_is_on_the_pulse_and_divergence_averaged_coupling(tmp_path):
+    """A 10 fs pulse and a 1 um spot (spreads of ~94 nm and ~14 deg) against the
+    quadrature of the closed-form film over the same Gaussians: the averaged coupling
+    within 1 % (the scan is interpolated linearly between its points)."""
+    raw = film(1000.0, 60.0)
+    raw["laser"].update(duration_fs=10.0, spot_radius_um=1.0)
+    data = run_compare(tmp_path, {"a": raw})
+    e = data["candidates"][0]
+    avg = e["bandwidth_average"]
+    b0 = film_beta_c(raw)
+    sig_l = avg["spectral_fwhm_nm"] / (2 * math.sqrt(2 * math.log(2)))
+    lams = np.linspace(-4 * sig_l, 4 * sig_l, 161)
+    w = np.exp(-0.5 * (lams / sig_l) ** 2)
+    r = []
+    for d in lams:
+        q = copy.deepcopy(raw)
+        q["laser"]["wavelength_nm"] = 800.0 + d
+        r.append(film_beta_c(q) / b0)
+    spectral = float(np.sum(w * r) / np.sum(w))
+    sig_a = 0.5 * avg["angular_half_width_deg"]
+    angles = np.linspace(-4 * sig_a, 4 * sig_a, 161)
+    w = np.exp(-0.5 * (angles / sig_a) ** 2)
+    r = [film_beta_c(film(1000.0, 60.0 + d)) / b0 for d in angles]
+    angular = float(np.sum(w * r) / np.sum(w))
+    assert avg["spectral_ratio"] == pytest.approx(spectral, rel=0.01)
+    assert avg["angular_ratio"] == pytest.approx(angular, rel=0.01)
+    assert avg["beta_c"] == pytest.approx(b0 * spectral * angular, rel=0.02)
+    assert data["ranked_on"].startswith("bandwidth_average")
+
+
+def test_hole_candidates_keep_their_own_azimuth_polarization_and_path(tmp_path):
+    """How a hole array is lit and crossed is its own (structural, no source)."""
+    holes = copy.deepcopy(FILM)
+    holes["sample"] = {"family": "membrane", "material": {"n": 2.0}, "thickness_nm": 100.0,
+                       "pattern": "holes", "lattice": "hexagonal", "period_nm": 500.0,
+                       "hole_axes_nm": [120.0, 80.0], "hole_angle_deg": 30.0}
+    holes["laser"].update(azimuth_deg=30.0, polarization="s", wavelength_nm=900.0)
+    holes["path"] = {"x_nm": 40.0, "y_nm": 60.0}
+    holes["solver"] = {"fourier_orders": 2}
+    first = film(200.0, 40.0)
+    first["laser"]["azimuth_deg"] = 10.0
+    first["solver"] = {"method": "auto"}
+    specs = [load_spec(p) for p in write_specs(tmp_path, {"f": first, "h": holes})]
+    candidates, footing = make_candidates(specs)
+    h = candidates[1]
+    assert h.raw["laser"]["azimuth_deg"] == 30.0 and h.raw["laser"]["polarization"] == "s"
+    assert h.raw["laser"]["wavelength_nm"] == 800.0          # the common laser
+    assert h.raw["path"] == {"x_nm": 40.0, "y_nm": 60.0}
+    assert "azimuth_deg" not in footing["laser"]
+    assert {k for k, _, _ in h.variants} == {"sample.thickness_nm", "sample.period_nm",
+                                             "sample.hole_axes_nm.0",
+                                             "sample.hole_axes_nm.1"}

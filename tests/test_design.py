@@ -91,6 +91,20 @@ def membrane(tmp_path, *, thickness=45.0, lo=40.0, hi=140.0, iterations=40, star
                                            method=method, extra=extra), name)
 
 
+def design_cli(path, out):
+    """``velomatch design PATH --out OUT`` through the command line, with the handler
+    called directly; returns the exit code."""
+    from designer import commands
+    from designer.cli import main
+
+    orig = commands.run_design
+    commands.run_design = d.design_command
+    try:
+        return main(["design", str(path), "--out", str(out)])
+    finally:
+        commands.run_design = orig
+
+
 def scan_coupling(spec, t_lo_nm, t_hi_nm, n=2001):
     """|beta_c|/E0 of the film vs thickness, straight from the transfer-matrix solver."""
     eps = spec.sample.material.eps
@@ -238,19 +252,12 @@ def test_same_seed_same_result_and_resume_matches(tmp_path):
 
 def test_outputs_reproduce_under_evaluate(tmp_path):
     spec_path = membrane(tmp_path, thickness=100.0, lo=40.0, hi=140.0, iterations=8)
-    from designer import commands
-    from designer.cli import main
-
-    orig = getattr(commands, "run_design")
-    commands.run_design = d.design_command
-    try:
-        assert main(["design", str(spec_path), "--out", str(tmp_path / "out")]) == 0
-        # an existing non-empty folder is never reused unless asked
-        assert main(["design", str(spec_path), "--out", str(tmp_path / "out")]) == 2
-    finally:
-        commands.run_design = orig
+    assert design_cli(spec_path, tmp_path / "out") == 0
+    # an existing non-empty folder is never reused unless asked
+    assert design_cli(spec_path, tmp_path / "out") == 2
     out = tmp_path / "out"
-    for name in ("design.toml", "evaluation.json", "refined.json", "design.png",
+    for name in ("design.toml", "evaluation.json", "refined.json", "start_refined.json",
+                 "design.png",
                  "history.json", "convergence.png", "comparison.json", "comparison.txt",
                  "checkpoint.json", "report.html"):
         assert (out / name).exists(), name
@@ -368,3 +375,136 @@ def test_field_cap_in_material_is_respected(tmp_path):
     assert capped_fig["max_field_in_material_V_per_m"] <= cap * (1 + 1e-3)
     assert capped.best_record["objective"] >= capped.start_record["objective"]
     assert capped.best_record["objective"] < free.best_record["objective"]
+
+
+# ---------------------------------------------------------------------------------
+# the start check and the error-bar comparison
+# ---------------------------------------------------------------------------------
+def test_start_outside_the_rules_is_reported_then_moved(tmp_path, capsys):
+    # A 45 nm film under a [fabrication] thickness rule of [60, 140] nm: the start is
+    # outside the rules.  design must say so (stderr and comparison.json), start from
+    # the nearest bound (60 nm, closed form), and its "start" column must be that moved
+    # film: compared with the transfer-matrix solution of a 60 nm film computed
+    # directly (Born & Wolf, see the module docstring).  Layer stacks are exact, so a
+    # gain of several per cent is far outside the (zero) error and gives no warning.
+    path = membrane(tmp_path, thickness=45.0, lo=40.0, hi=140.0, iterations=3,
+                    extra="[fabrication]\nthickness_nm = [60.0, 140.0]")
+    assert design_cli(path, tmp_path / "out") == 0
+    captured = capsys.readouterr()
+    assert "the spec's own start is outside the rules" in captured.err
+    assert "sample.thickness_nm = 45 is outside its bounds [60, 140]" in captured.err
+    assert "continues from the start moved inside the bounds (thickness_nm = 60)" in captured.err
+    assert "start: the spec's start moved inside the bounds (thickness_nm 45 -> 60)" in \
+        captured.out
+    comp = json.loads((tmp_path / "out" / "comparison.json").read_text())
+    check = comp["start_check"]
+    assert check["within_rules"] is False and check["continues_from"] == "moved"
+    assert check["spec_values"] == {"thickness_nm": pytest.approx(45.0)}
+    assert check["bounds"]["thickness_nm"] == pytest.approx([60.0, 140.0])
+    assert check["moved"]["thickness_nm"]["from"] == pytest.approx(45.0)
+    assert check["moved"]["thickness_nm"]["to"] == pytest.approx(60.0)
+    assert "fabrication rules" in check["bounds_from"]["thickness_nm"]
+    assert [v["rule"] for v in check["design_rules"]["violations"]] == ["thickness"]
+    assert check["violations"] == comp["design_rule_violations"]["spec_start"]
+    assert comp["design_rule_violations"]["start"] == []       # the moved start is clean
+    assert comp["start_design"]["kind"] == "moved"
+    assert comp["variables"]["thickness_nm"]["start"] == pytest.approx(60.0)
+    assert comp["variables"]["thickness_nm"]["spec_start"] == pytest.approx(45.0)
+    spec = load_spec(path)
+    t, y = scan_coupling(spec, 45.0, 60.0, n=2)
+    f = comp["figures"]["beta_c_per_field_m_per_V"]
+    assert abs(f["start"] - y[1]) <= 1e-6 * y[1]                     # the moved start
+    assert abs(check["spec_start_figures"]["beta_c_per_field_m_per_V"] - y[0]) <= 1e-6 * y[0]
+    r = f["refined"]
+    assert r["start"]["relative_error"] == 0.0 and r["optimized"]["relative_error"] == 0.0
+    assert r["ratio"] > 1.05 and r["gain_exceeds_error"] is True
+    assert comp["gain"]["gain_exceeds_error"] is True and comp["gain"]["warning"] is None
+    assert comp["warnings"] == []
+    assert "inside the combined error" not in captured.err + captured.out
+    html = (tmp_path / "out" / "report.html").read_text()
+    assert "The start is outside the rules" in html and "(exact)" in html
+
+
+def _evaluation(beta, rel, e_max, step, solver="fdfd"):
+    """A constructed evaluation JSON (only the keys the comparison reads)."""
+    kappa = beta * 1e7
+    return {"coupling": {"beta_c_per_field_m_per_V": beta, "structure_factor": kappa,
+                         "max_field_in_material_V_per_m": e_max,
+                         "damage_factor": kappa / e_max, "relative_error_estimate": rel,
+                         "error_estimate": {"note": "observed order 2.00 (three grids)"}},
+            "provenance": {"solver": solver, "grid_step_m": step}}
+
+
+def test_gain_inside_the_combined_error_warns():
+    # Error propagation for a quotient of independent results: relative errors add in
+    # quadrature (J. R. Taylor, An Introduction to Error Analysis, 2nd ed., 1997,
+    # section 3.6); the E_max error is Richardson's two-grid estimate at first order,
+    # |E_f - E_c| / (r - 1) / E_f (L. F. Richardson, Phil. Trans. R. Soc. A 210, 307,
+    # 1911).  The numbers are constructed for the arithmetic.
+    h = 10e-9
+    start = _evaluation(1.00e-8, 0.02, 1.0, h)
+    start_coarse = _evaluation(0.99e-8, None, 1.1, 2 * h)      # E_max error 0.1
+    inside = _evaluation(1.01e-8, 0.02, 1.0, h)
+    out = d.refined_comparison(start, start_coarse, inside, start_coarse, "coupling")
+    g = out["gain"]
+    assert g["figure"] == "beta_c_per_field_m_per_V"
+    assert g["ratio"] == pytest.approx(1.01)
+    assert g["relative_error"] == pytest.approx(np.hypot(0.02, 0.02))
+    assert g["absolute_error"] == pytest.approx(1.01 * np.hypot(0.02, 0.02))
+    assert g["gain_exceeds_error"] is False
+    assert "inside the combined error estimate" in g["warning"]
+    assert out["warnings"] == [g["warning"]]
+    rows = out["figures"]
+    e = rows["max_field_in_material_V_per_m"]["start"]
+    assert e["relative_error"] == pytest.approx(0.1) and e["absolute_error"] == pytest.approx(0.1)
+    assert rows["damage_factor"]["start"]["relative_error"] == pytest.approx(np.hypot(0.02, 0.1))
+    assert rows["structure_factor"]["optimized"]["relative_error"] == 0.02
+    # a 20 % gain with 2 % errors is a gain: no warning
+    clear = d.refined_comparison(start, start_coarse, _evaluation(1.2e-8, 0.02, 1.0, h),
+                                 start_coarse, "coupling")
+    assert clear["gain"]["gain_exceeds_error"] is True and clear["warnings"] == []
+    # a loss beyond the error is named as one
+    worse = d.refined_comparison(start, start_coarse, _evaluation(0.8e-8, 0.02, 1.0, h),
+                                 start_coarse, "structure_factor")
+    assert "worse than the start" in worse["gain"]["warning"]
+    # no estimate (and no coarser grid to fall back on): the gain cannot be judged
+    bare = _evaluation(1e-8, None, 1.0, h)
+    unknown = d.refined_comparison(bare, bare, inside, start_coarse, "coupling")
+    assert unknown["gain"]["gain_exceeds_error"] is None
+    assert "no error estimate" in unknown["gain"]["warning"]
+
+
+@pytest.mark.slow
+def test_a_run_that_cannot_move_warns_that_its_gain_is_inside_the_error(tmp_path, capsys):
+    # One iteration records only the start, so the optimized design is the start
+    # (rounded for the cleanroom) and its ratio is 1 to rounding: any positive error
+    # estimate must contain it, and design must say so (common practice, no source).
+    # The start keeps the rules, so it is the spec's own.
+    text = GRATING.replace('method = "adam"', 'optimizer = "lbfgsb"').replace(
+        "grid_step_nm = 20.0", "grid_step_nm = 40.0").replace("length_um = 10.0",
+                                                               "length_um = 3.0")
+    path = write(tmp_path, text.format(objective="coupling", iterations=1, starts=1, extra=""))
+    assert design_cli(path, tmp_path / "out") == 0
+    captured = capsys.readouterr()
+    assert "outside the rules" not in captured.err
+    assert "start: the spec's own start" in captured.out
+    warning = "is inside the combined error estimate: it is not a gain"
+    assert warning in captured.err and warning in captured.out
+    out = tmp_path / "out"
+    comp = json.loads((out / "comparison.json").read_text())
+    assert comp["start_check"]["within_rules"] and comp["start_design"]["kind"] == "spec"
+    g = comp["gain"]
+    assert g["gain_exceeds_error"] is False and warning in g["warning"]
+    assert abs(g["ratio"] - 1.0) < 1e-3 < g["absolute_error"]
+    start = json.loads((out / "start_refined.json").read_text())
+    refined = json.loads((out / "refined.json").read_text())
+    assert start["provenance"]["grid_step_m"] == refined["provenance"]["grid_step_m"]
+    for key, _ in d.FIGURE_KEYS:
+        row = comp["figures"][key]["refined"]
+        for side in ("start", "optimized"):
+            assert row[side]["relative_error"] > 0
+            assert row[side]["absolute_error"] == pytest.approx(
+                row[side]["value"] * row[side]["relative_error"])
+    assert comp["figures"]["beta_c_per_field_m_per_V"]["refined"]["start"]["value"] == \
+        start["coupling"]["beta_c_per_field_m_per_V"]
+    assert warning in (out / "report.html").read_text()

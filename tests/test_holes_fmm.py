@@ -82,6 +82,44 @@ def test_hole_membrane_against_meep_3d():
     assert r.relative_difference < 0.03, (r.integral_fmm_V, r.integral_fdtd_V)
 
 
+def test_fmm_largest_field_equals_exact_stack_for_films():
+    """|E|max in material from the Fourier series of an unpatterned stack (film, a layer
+    above, a substrate) against the dense sampling of the exact transfer-matrix field
+    (Born & Wolf ch. 1.6, solvers/layers.py): within 1e-3 (different sample points)."""
+    sample = {"layers": [{"material": {"n": 1.45}, "thickness_nm": 30.0, "side": "above"}],
+              "substrate": {"n": 1.2}}
+    exact = evaluate(parse_spec(_raw(sample, solver={"method": "layers"}), source="a"))
+    fmm = evaluate(parse_spec(_raw(sample, solver={"method": "fmm"}), source="b"))
+    assert fmm.run.max_field_in_material == pytest.approx(exact.run.max_field_in_material,
+                                                          rel=1e-3)
+    c = evaluation_json(fmm)["coupling"]
+    assert c["damage_factor"] is not None and c["damage_factor"] > 0
+
+
+def test_hole_membrane_reports_largest_field_and_damage_factor():
+    """Holes of 1 nm leave the film's field (exact stack, as above) everywhere outside
+    the wall band: |E|max within 0.5 %; a real hole array reports E_max, the damage
+    factor G/E_max and the band rule (common practice, no source)."""
+    film = evaluate(parse_spec(_raw({}, solver={"method": "layers"}), source="f"))
+    tiny = evaluate(parse_spec(_raw({**HOLES, "hole_radius_nm": 1.0},
+                                    solver={"fourier_orders": 2, "refine": False}),
+                               source="t"))
+    assert tiny.run.max_field_in_material == pytest.approx(film.run.max_field_in_material,
+                                                           rel=5e-3)
+    from designer import holes
+
+    spec = parse_spec(_raw(HOLES, solver={"fourier_orders": 2, "refine": False}), source="h")
+    c = evaluation_json(evaluate(spec))["coupling"]
+    assert c["max_field_in_material_V_per_m"] > 0
+    assert c["damage_factor"] == pytest.approx(c["gradient_V_per_m"]
+                                               / c["max_field_in_material_V_per_m"])
+    assert "80 nm" in c["max_field_rule"]          # P/(2N+1) = 400/5 nm > corner radius
+    inside, wall = holes.openings(spec, [0.0, 150e-9, 200e-9], [0.0, 0.0, 200e-9])
+    assert list(inside) == [True, False, False]
+    assert wall[1] == pytest.approx(50e-9) and wall[2] == pytest.approx(
+        math.hypot(200e-9, 200e-9) - 100e-9)
+
+
 @pytest.mark.slow
 def test_slit_membrane_fmm_agrees_with_fdfd_within_both_estimates():
     """Slits infinite along y: the 1D Fourier modal solution (Li's factorization, orders

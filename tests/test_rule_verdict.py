@@ -1,9 +1,12 @@
 """One design-rule verdict: what `design` reports is what `export` enforces.
 
 For every family, plane and free-form setting, the verdict that `velomatch design`
-prints for a design (designer.design._violations, the check behind "design-rule
-check: clean") must equal what `velomatch export` does with the same spec: write it
-when the verdict is clean, refuse it (exit 3) with the same violations otherwise.
+reports for the spec's own start (designer.design.start_check, before any variable is
+moved into its bounds) must equal what `velomatch export` does with the same spec:
+write it when the verdict is clean, refuse it (exit 3) with the same violations
+otherwise.  Where nothing is moved, the run's own check of its start point
+(designer.design._violations, the check behind "design-rule check: clean") must say
+the same.
 Both sides are computed by the program, so this checks their agreement, not a physical
 value; the geometric facts behind the planted violations (a 200 nm wide tooth is
 narrower than a 300 nm rule; a column with a solid foot under a void changes
@@ -15,6 +18,7 @@ import numpy as np
 import pytest
 
 from designer import design as d
+from designer import optimize as opt
 from designer.cli import build_parser
 from designer.errors import SpecError
 from designer.export import DesignRuleError, export_command
@@ -120,13 +124,17 @@ CASES = {
 
 
 def _design_verdict(spec):
-    """What `design` reports for the spec's own design (its start)."""
-    problem = d.build_problem(spec, d.parse_optimize(spec))
-    import designer.optimize as opt
-
-    u0 = opt.to_unit(problem.x_start, problem.box)
-    pattern = problem.start_pattern() if problem.chain is not None else None
-    return d._violations(problem, u0, pattern)
+    """What `design` reports for the spec's own design (its start): the start check's
+    verdict.  When nothing is moved into the bounds, the run's own view of its start
+    (the rule check of the problem's start point) must say the same."""
+    config = d.parse_optimize(spec)
+    problem = d.build_problem(spec, config)
+    check = d.start_check(spec, config, problem.grid_step_m)
+    if not check["moved"]:
+        u0 = opt.to_unit(problem.x_start, problem.box)
+        pattern = problem.start_pattern() if problem.chain is not None else None
+        assert d._violations(problem, u0, pattern) == check["violations"]
+    return check["violations"]
 
 
 def _export(path, tmp_path, capsys):
@@ -157,11 +165,6 @@ def test_design_verdict_equals_export(tmp_path, capsys, name, feature):
         # nothing to draw (a flat prism): design says so instead of "clean"
         assert check_design(spec).not_checked, printed
         return
-    if feature == 300.0 and outcome == "refused" and printed != messages[:20]:
-        # Known defect, still open: design checks the start after moving it inside the
-        # automatic bounds (designer.design.build_problem clips it), so design reports
-        # fewer (or no) violations of a start that breaks the rules than export does.
-        pytest.xfail("design checks the clipped start, export the spec's own")
     if messages:
         assert outcome == "refused" and printed == messages[:20]
     else:

@@ -147,6 +147,12 @@ def test_demo_grating_study(tmp_path, capsys):
     assert k["optimized"] >= k["start"] * (1 - 1e-9)
     assert s["optimizer_objective"]["optimized"] >= s["optimizer_objective"]["start"]
     assert s["design_rule_violations"] == [] and s["layout"]["violations"] == 0
+    # the gain is judged on the refined grid against the combined error, and the
+    # closing says whether it is one (common practice, no source)
+    g = s["gain"]
+    assert g["figure"] == "structure_factor" and g["absolute_error"] > 0
+    assert g["gain_exceeds_error"] == (abs(g["ratio"] - 1.0) > g["absolute_error"])
+    assert ("not a gain" in printed) == (not g["gain_exceeds_error"])
     # kappa of dielectric-accelerator gratings: roughly 0.1-0.5 (value from memory);
     # a single-sided grating seen from half a decay length above: loose bound
     assert 0.01 < k["optimized"] < 1.0
