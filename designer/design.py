@@ -699,6 +699,7 @@ class StartState:
     step_scale: float = 1.0          # Adam step control
     accepted: dict | None = None     # Adam step control: the last accepted point
     evaluations: int = 0             # objective evaluations (line searches included)
+    restarts: int = 0                # L-BFGS-B restarts after a cell-scale pattern move
 
 
 def _record(problem: DesignProblem, k: int, u, loss, extras, pg, seconds) -> dict:
@@ -817,9 +818,76 @@ def _run_lbfgsb(problem, st, *, checkpoint, bar=None, on_iteration=None) -> None
             continue
         if len(st.losses) >= cfg.iterations:
             st.reason = "iteration budget"
-        else:
-            st.reason = f"L-BFGS-B: {res.message}"
-        return
+            return
+        st.reason = f"L-BFGS-B: {res.message}"
+        if problem.chain is not None or st.restarts >= CELL_RESTARTS:
+            return
+        # the objective is only meaningful above the grid's cell: a line search that
+        # stops on the cell ripple's false zeros of the gradient is no optimum there
+        if not _cell_pattern_moves(problem, st, fun, record):
+            if len(st.losses) >= cfg.iterations:
+                st.reason = "iteration budget"
+            return
+        st.restarts += 1
+
+
+CELL_RIPPLE = 3e-3   # relative gain a cell-scale move must beat (the default grid's ripple
+                     # bound, tests/test_smooth_objective.py)
+CELL_RESTARTS = 4    # L-BFGS-B restarts after cell-scale pattern moves, at most
+
+
+def cell_steps(problem: DesignProblem) -> np.ndarray:
+    """One grid cell per variable in unit-box coordinates.
+
+    A length (``*_nm``) moves a surface by its own change: ``h / (hi - lo)``.  Other
+    variables (a duty cycle, an angle) have no length of their own: 1/48 of their box,
+    about a cell of the default grid for a duty cycle (common practice, no source)."""
+    span = problem.box.upper - problem.box.lower
+    h_nm = (problem.grid_step_m or 0.0) * 1e9
+    fallback = np.full(span.shape, 1.0 / 48.0)
+    if h_nm <= 0.0:
+        return fallback
+    is_length = np.array([k.endswith("_nm") for k in problem.config.keys]
+                         + [False] * (span.size - problem.n_keys))
+    return np.where(is_length, h_nm / span, fallback)
+
+
+def _cell_pattern_moves(problem, st, fun, record) -> bool:
+    """A compass search (R. Hooke & T. A. Jeeves, J. ACM 8, 212, 1961) on the cell
+    scale from the last accepted point: steps of 2 cells per variable, doubled after a
+    gain and halved to one cell after a miss.  A move is accepted (and recorded) only
+    when the loss falls by more than ``CELL_RIPPLE`` of itself, so accepted records
+    keep or lower the loss.  True when at least one move was accepted."""
+    cfg = problem.config
+    u = np.asarray(st.u, dtype=float)
+    loss = st.losses[-1]
+    cell = cell_steps(problem)
+    directions = [(i, s) for i in range(u.size) for s in (1.0, -1.0)]
+    scale, moved = 2.0, False
+    while len(st.losses) < cfg.iterations:
+        gained = None
+        for i, s in directions:
+            cand = u.copy()
+            cand[i] = np.clip(cand[i] + s * scale * cell[i], 0.0, 1.0)
+            if cand[i] == u[i] or not problem.valid(cand):
+                continue
+            trial, _ = fun(cand)
+            if trial < loss - CELL_RIPPLE * abs(loss):
+                gained = (i, s)
+                break
+        if gained is None:
+            if scale <= 1.0:
+                return moved
+            scale = max(1.0, scale / 2.0)
+            continue
+        u, loss = cand, trial
+        record(cand)
+        st.history[-1]["step"] = f"cell pattern ({scale:g} cells)"
+        moved = True
+        directions.remove(gained)
+        directions.insert(0, gained)
+        scale *= 2.0
+    return moved
 
 
 def _run_adam(problem, st, *, checkpoint, bar=None, on_iteration=None) -> None:
@@ -1016,7 +1084,7 @@ def _state_json(st: StartState) -> dict:
             "multipliers": opt.array_to_json(st.multipliers), "losses": st.losses,
             "history": st.history, "reason": st.reason,
             "step_scale": float(st.step_scale).hex(), "accepted": acc,
-            "evaluations": st.evaluations}
+            "evaluations": st.evaluations, "restarts": st.restarts}
 
 
 def _state_from_json(d: dict, problem: DesignProblem) -> StartState:
@@ -1032,7 +1100,7 @@ def _state_from_json(d: dict, problem: DesignProblem) -> StartState:
                       opt.array_from_json(d["multipliers"]), list(d["losses"]),
                       list(d["history"]), d["reason"],
                       float.fromhex(d.get("step_scale", (1.0).hex())), acc,
-                      int(d.get("evaluations", 0)))
+                      int(d.get("evaluations", 0)), int(d.get("restarts", 0)))
 
 
 # ---------------------------------------------------------------------------------
@@ -1486,7 +1554,7 @@ def comparison(result: DesignResult, start_eval: dict, design_eval: dict,
             "optimized": _violations(p, result.best_u)},
         "best_start": result.best_start,
         "starts": [{"index": st.index, "iterations": len(st.losses), "stopped": st.reason,
-                    "best_objective": rec["objective"], "violations": v}
+                    "restarts": st.restarts, "best_objective": rec["objective"], "violations": v}
                    for st, (_, rec, v) in zip(result.starts, result.per_start_best)],
     }
     if refined is not None:
