@@ -1773,7 +1773,8 @@ def write_outputs(result: DesignResult, out_dir: str | Path, *, status=None) -> 
                "constraints": list(p.constraint_names), "solver": p.method,
                "grid_step_m": p.grid_step_m, "start": result.start_record,
                "best_start": result.best_start, "best": result.best_record,
-               "starts": [{"index": st.index, "stopped": st.reason, "history": st.history}
+               "starts": [{"index": st.index, "stopped": st.reason, "restarts": st.restarts,
+                           "history": st.history}
                           for st in result.starts]}
     vio.write_json(out / "history.json", history)
     vio.save_figure(convergence_figure(result), out / "convergence.png")

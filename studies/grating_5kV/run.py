@@ -102,6 +102,10 @@ def run_study(out: Path, quick: bool, say=None) -> dict:
     history = json.loads((out / "design" / "history.json").read_text())
     steps = history["starts"][0]["history"] if "starts" in history else history["history"]
     drops = accepted_drops(steps)
+    first = history["starts"][0] if "starts" in history else history
+    drops.update(stopped=first.get("stopped"), restarts=first.get("restarts", 0),
+                 cell_pattern_steps=sum(1 for r in steps
+                                        if str(r.get("step", "")).startswith("cell pattern")))
     best = run["design_spec"]
     h_opt, d_opt = best.sample.tooth_height_m * 1e9, best.sample.duty_cycle
 
