@@ -78,7 +78,10 @@ def _membrane_value(params, point, theta0=None, phi=0.5, lattice="hexagonal"):
 
 
 def _check_jacobian(fun, x0, steps, rtol):
-    jac = np.asarray(jax.jacrev(fun)(jnp.asarray(x0)))
+    # compiled once each: the un-jitted reverse pass and the eight difference
+    # evaluations dominated the test's time
+    jac = np.asarray(jax.jit(jax.jacrev(fun))(jnp.asarray(x0)))
+    fun = jax.jit(fun)
     for k, h in enumerate(steps):
         e = np.zeros_like(x0)
         e[k] = h

@@ -201,7 +201,9 @@ def _solve(lattice, layers, eps_below, eps_above, wavelength, theta, phi, psi, f
     # pre[j]: from the medium below up to the bottom of layer j; suf[j]: from the top
     # of layer j to the medium above.  Only the response to the one incident wave is
     # needed, so the global S-matrix is never formed.
-    ints = [sm.interface(media[k][1], media[k][2], media[k + 1][1], media[k + 1][2])
+    uniform = [True] + [isinstance(lay, UniformLayer) for lay in layers] + [True]
+    ints = [sm.interface(media[k][1], media[k][2], media[k + 1][1], media[k + 1][2],
+                         a_identity=uniform[k], b_identity=uniform[k + 1])
             for k in range(n_lay + 1)]
     xs = [jnp.exp(1j * k0 * media[j + 1][0] * thick[j]) for j in range(n_lay)]
     pre = [ints[0]]

@@ -6,6 +6,7 @@ from above by a p-polarized plane wave (azimuth 0) near 800 nm; a 100 kV electro
 it along the normal 100 nm from a hole centre.  Measured:
 
 * ``solve_s``: one solve + coupling at the default order count (compiled; median);
+  every time also as process CPU seconds (``*_cpu_s``, less sensitive to other loads);
 * ``value_and_grad_over_value``: time of |beta_c| with its gradient w.r.t. hole radius,
   period, thickness and incidence angle, over the time of |beta_c| alone;
 * ``map_points``, ``map_s``: an angle x wavelength map of |beta_c| (``jax.lax.map`` over
@@ -28,7 +29,12 @@ import statistics
 import sys
 import time
 
-import numpy as np
+# One BLAS thread: the eigensolve runs in numpy's LAPACK next to XLA's own thread pool,
+# and a multithreaded OpenBLAS on 2 shared cores oversubscribes them (measured several
+# times slower per solve).  Set before numpy loads; an explicit setting wins.
+os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+
+import numpy as np  # noqa: E402
 
 sys.path.insert(0, os.path.join(os.path.dirname(__file__), "..", ".."))
 
@@ -58,12 +64,15 @@ def beta_abs(params, wavelength, orders=DEFAULT_ORDERS):
 
 
 def _median_time(fn, repeats):
-    times = []
+    """Median wall-clock and process CPU seconds of ``fn()``.  The CPU time counts every
+    thread of this process, so on shared cores it is the less noisy of the two."""
+    wall, cpu = [], []
     for _ in range(repeats):
-        t0 = time.perf_counter()
+        t0, c0 = time.perf_counter(), time.process_time()
         jax.block_until_ready(fn())
-        times.append(time.perf_counter() - t0)
-    return statistics.median(times)
+        wall.append(time.perf_counter() - t0)
+        cpu.append(time.process_time() - c0)
+    return statistics.median(wall), statistics.median(cpu)
 
 
 def main(argv=None):
@@ -83,11 +92,13 @@ def main(argv=None):
     compile_grad = time.perf_counter() - t0
     print(f"compiled value ({compile_value:.1f} s) and value+gradient ({compile_grad:.1f} s)",
           file=sys.stderr)
-    t_val = _median_time(lambda: value(x0), 5)
-    t_grad = _median_time(lambda: vgrad(x0), 5)
+    t_val, c_val = _median_time(lambda: value(x0), 7)
+    t_grad, c_grad = _median_time(lambda: vgrad(x0), 7)
     m = (2 * DEFAULT_ORDERS + 1) ** 2
     out.update(orders=DEFAULT_ORDERS, harmonics=m, solve_s=t_val,
                value_and_grad_s=t_grad, value_and_grad_over_value=t_grad / t_val,
+               solve_cpu_s=c_val, value_and_grad_cpu_s=c_grad,
+               value_and_grad_over_value_cpu=c_grad / c_val,
                compile_value_s=compile_value, compile_value_and_grad_s=compile_grad,
                beta_c=float(value(x0)))
 
@@ -108,15 +119,17 @@ def main(argv=None):
     t0 = time.perf_counter()
     grid = np.asarray(beta_map(thetas, lams))
     t_first = time.perf_counter() - t0
-    t0 = time.perf_counter()
+    t0, c0 = time.perf_counter(), time.process_time()
     grid = np.asarray(beta_map(thetas, lams))
-    t_map = time.perf_counter() - t0
+    t_map, c_map = time.perf_counter() - t0, time.process_time() - c0
     print(f"{n_map} x {n_map} map: {t_map:.1f} s (first call with compilation "
           f"{t_first:.1f} s)", file=sys.stderr)
-    out.update(map_points=n_map * n_map, map_s=t_map, map_first_call_s=t_first,
+    out.update(map_points=n_map * n_map, map_s=t_map, map_cpu_s=c_map,
+               map_first_call_s=t_first,
                map_beta_c_max=float(grid.max()), map_beta_c_min=float(grid.min()))
     if n_map != 41:
         out["map_41x41_estimate_s"] = t_map * (41 * 41) / (n_map * n_map)
+        out["map_41x41_estimate_cpu_s"] = c_map * (41 * 41) / (n_map * n_map)
 
     # convergence with the order count
     conv = []
@@ -131,6 +144,7 @@ def main(argv=None):
         c["relative_change_to_highest"] = abs(c["beta_c"] / ref - 1)
     out["convergence"] = conv
     out["cores"] = os.cpu_count()
+    out["openblas_threads"] = os.environ.get("OPENBLAS_NUM_THREADS")
     print(json.dumps(out, indent=1))
 
 
