@@ -185,12 +185,21 @@ def design(spec: Spec | str | Path, out_dir: str | Path, *, iterations: int | No
     (``design_spec``: the optimized design as a Spec, loaded from design.toml)."""
     from designer import io as vio
     from designer.design import parse_optimize, run_design, write_outputs
+    from designer.holes import is_fmm_sample
 
     spec = _spec(spec)
-    config = parse_optimize(spec, iterations)
-    out = vio.prepare_output_dir(out_dir, overwrite=overwrite, resume=resume)
-    result = run_design(spec, out, config, resume=resume, status=_say(quiet))
-    write_outputs(result, out, status=_say(quiet))
+    if is_fmm_sample(spec):
+        from designer.hole_design import design_holes, parse_hole_optimize
+
+        parse_hole_optimize(spec, iterations)     # bad input before the folder is made
+        out = vio.prepare_output_dir(out_dir, overwrite=overwrite, resume=resume)
+        design_holes(spec, out, iterations=iterations, resume=resume, progress=not quiet,
+                     status=_say(quiet))
+    else:
+        config = parse_optimize(spec, iterations)
+        out = vio.prepare_output_dir(out_dir, overwrite=overwrite, resume=resume)
+        result = run_design(spec, out, config, resume=resume, status=_say(quiet))
+        write_outputs(result, out, status=_say(quiet))
     return {"comparison": json.loads((out / "comparison.json").read_text()),
             "evaluation": json.loads((out / "evaluation.json").read_text()),
             "design_spec": load_spec(out / "design.toml"),

@@ -38,7 +38,9 @@ below move one thing at a time:
   Gaussian of ``laser.duration_fs``) and, separately, over the beam's angular spectrum
   (Gaussian beam of ``laser.spot_radius_um``), read off the two scans above
   (:func:`laser_spreads`, :func:`spread_average`).  Without duration and spot both
-  means are 1 and the ranking is on the nominal coupling.
+  means are 1 and the ranking is on the nominal coupling.  The product of the two
+  means is exact when the response factorizes in angle and wavelength; for a
+  resonance, whose line runs across the angle-wavelength plane, it is an estimate.
 
 Every family goes through the same scans, the Fourier-modal hole and slit membranes
 included (their angle scan moves the polar angle at the candidate's own azimuth).
@@ -500,8 +502,10 @@ def _assemble(candidates, footing, scans) -> dict:
                                      "angular spectrum (Gaussian beam of [laser] "
                                      "spot_radius_um, in the plane of incidence); each "
                                      "ratio is 1 when the spec gives no duration / spot; "
-                                     "the two spreads are averaged separately (a product, "
-                                     "valid while both are narrow)"},
+                                     "the two spreads are averaged separately and "
+                                     "multiplied: exact when the response factorizes in "
+                                     "angle and wavelength, an estimate for a resonance "
+                                     "whose line runs across both"},
             "provenance": provenance(None, candidates=[e["source"] for e in entries])}
 
 

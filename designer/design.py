@@ -1784,6 +1784,13 @@ def _npy_bytes(a) -> bytes:
 def design_command(args) -> int:
     """``velomatch design SPEC --out DIR [--resume] [--overwrite] [--iterations N]``."""
     spec = load_spec(args.spec)
+    from designer.holes import is_fmm_sample
+
+    if is_fmm_sample(spec):
+        # hole lattices are solved by the Fourier modal method (designer.hole_design)
+        from designer.hole_design import hole_design_command
+
+        return hole_design_command(args, spec)
     config = parse_optimize(spec, getattr(args, "iterations", None))
     from designer.spec import input_files
 

