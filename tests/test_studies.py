@@ -317,6 +317,17 @@ def test_onchip_accelerator_study(tmp_path):
     # the parametric optimizer does not lose against its own start
     assert s["rectangular"]["structure_factor"] >= \
         0.98 * s["rectangular"]["start_structure_factor"]
+    # the designs' own refined error bars: the ratio's error is the root-sum-square of
+    # the relative errors (J. R. Taylor, An Introduction to Error Analysis, 1997, 3.6) and
+    # a gain is claimed only outside it
+    ref = s["refined"]
+    for key in ("structure_factor", "damage_factor"):
+        a, b = ref["rectangular"], ref["freeform"]
+        ratio = b[key] / a[key]
+        assert ref[key + "_ratio"] == pytest.approx(ratio, rel=1e-12)
+        assert ref[key + "_ratio_error"] == pytest.approx(ratio * math.hypot(
+            a[key + "_error"] / a[key], b[key + "_error"] / b[key]), rel=1e-12)
+        assert ref["gain_exceeds_error"][key] == (abs(ratio - 1) > ref[key + "_ratio_error"])
     if _meep_available():
         # independent solver on the free-form rows at the quick grid (5 %)
         assert s["crosscheck"]["relative_difference"] <= 0.05

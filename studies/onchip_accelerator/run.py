@@ -40,26 +40,48 @@ def say(message: str) -> None:
     print(message, file=sys.stderr, flush=True)
 
 
-# depth of each row's free-form region (nm), from the channel edge outward
+# The free-form settings (compared at a 25 nm grid, see README.md): depth of each row's
+# free-form region (nm) from the channel edge outward, the optimizer, the upper row's
+# relation to the lower one and the start (None: the rectangular optimum; a number: a
+# uniform density).
 REGION_DEPTH_NM = 600.0
+FREEFORM_OPTIMIZER = "adam"
+UPPER_ROW = "independent"
+START_DENSITY = None
 
 
 def freeform_raw(rect_design: Path, iterations: int) -> dict:
-    """The free-form spec: the rectangular optimum as the start, each row's free-form
-    region REGION_DEPTH_NM deep from the channel edge (the rows independent), the
-    density the only variable; same channel, beam, laser and rules."""
+    """The free-form spec: each row's free-form region REGION_DEPTH_NM deep from the
+    channel edge, started from the rectangular optimum (or START_DENSITY), the density
+    the only variable; same channel, beam, laser and rules."""
     import tomllib
 
     raw = tomllib.loads(rect_design.read_text())
     h = raw["sample"]["tooth_height_nm"]
-    raw["sample"]["freeform"] = {"upper": "independent",
+    raw["sample"]["freeform"] = {"upper": UPPER_ROW,
                                  "z_nm": [h - max(REGION_DEPTH_NM, h), h]}
+    if START_DENSITY is not None:
+        raw["sample"]["freeform"]["density"] = START_DENSITY
     raw["optimize"] = {"objective": "structure_factor", "variables": ["density"],
-                       "iterations": iterations, "learning_rate": 0.05,
+                       "iterations": iterations, "optimizer": FREEFORM_OPTIMIZER,
                        "projection_beta": [2.0, 64.0],
                        "projection_beta_every": max(2, iterations // 6),
                        "threshold_spread": 0.25}
+    if FREEFORM_OPTIMIZER == "adam":
+        raw["optimize"]["learning_rate"] = 0.05
     return raw
+
+
+def refined_figures(comparison: dict) -> dict:
+    """The design's own refined figures of its optimum (value and absolute error, from
+    `velomatch design`: comparison.json -> figures.<figure>.refined.optimized)."""
+    out = {}
+    for key in ("structure_factor", "damage_factor", "max_field_in_material_V_per_m"):
+        r = comparison["figures"][key]["refined"]["optimized"]
+        out[key] = r["value"]
+        out[key + "_error"] = r["absolute_error"]
+    out["grid_step_m"] = comparison.get("refined", {}).get("grid_step_m")
+    return out
 
 
 def figures_with_error(spec_path: Path) -> dict:
@@ -160,6 +182,9 @@ def run_study(out: Path, quick: bool) -> dict:
     ff, ff_ev, _ = figures_with_error(ff_dir / "design.toml")
     kappa_ratio = ratio_with_error(rect, ff, "structure_factor")
     damage_ratio = ratio_with_error(rect, ff, "damage_factor")
+    rect_refined, ff_refined = refined_figures(rect_comp), refined_figures(ff_comp)
+    kappa_refined = ratio_with_error(rect_refined, ff_refined, "structure_factor")
+    damage_refined = ratio_with_error(rect_refined, ff_refined, "damage_factor")
     vio.save_figure(side_by_side([rect_ev, ff_ev], ["(a) rectangular pillars",
                                                     "(b) free-form rows"]),
                     out / "side_by_side.png")
@@ -219,6 +244,19 @@ def run_study(out: Path, quick: bool) -> dict:
         "structure_factor_ratio_error": kappa_ratio[1],
         "damage_factor_ratio": damage_ratio[0],
         "damage_factor_ratio_error": damage_ratio[1],
+        "refined": {"rectangular": rect_refined, "freeform": ff_refined,
+                    "structure_factor_ratio": kappa_refined[0],
+                    "structure_factor_ratio_error": kappa_refined[1],
+                    "damage_factor_ratio": damage_refined[0],
+                    "damage_factor_ratio_error": damage_refined[1],
+                    "gain_exceeds_error": {
+                        "structure_factor": abs(kappa_refined[0] - 1) > kappa_refined[1],
+                        "damage_factor": abs(damage_refined[0] - 1) > damage_refined[1]}},
+        "freeform_settings": {"optimizer": FREEFORM_OPTIMIZER,
+                              "region_depth_nm": REGION_DEPTH_NM, "upper": UPPER_ROW,
+                              "start": ("rectangular optimum" if START_DENSITY is None
+                                        else f"uniform density {START_DENSITY}"),
+                              "iterations": FREEFORM_ITERATIONS[quick]},
         "targets": TARGETS,
         "targets_met": {"structure_factor_ratio": kappa_ratio[0] >= TARGETS[
                             "structure_factor_ratio"],
