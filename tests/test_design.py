@@ -374,7 +374,10 @@ def test_field_cap_in_material_is_respected(tmp_path):
     capped, capped_fig = run(f"max_field_V_per_m = {cap!r}", "capped.toml")
     assert capped_fig["max_field_in_material_V_per_m"] <= cap * (1 + 1e-3)
     assert capped.best_record["objective"] >= capped.start_record["objective"]
-    assert capped.best_record["objective"] < free.best_record["objective"]
+    # the cap costs objective; the two end points are compared to the default grid's
+    # cell ripple (design.CELL_RIPPLE): the optimizer's stops are only that precise
+    assert capped_fig["max_field_in_material_V_per_m"] < e_free
+    assert capped.best_record["objective"] <= free.best_record["objective"] * (1 + d.CELL_RIPPLE)
 
 
 # ---------------------------------------------------------------------------------
