@@ -179,8 +179,12 @@ def _coupling_text(result: dict) -> str:
     from designer.resolved import sample_lines
 
     c, prov, las = result["coupling"], result["provenance"], result["laser"]
-    solver = (f"FDFD, grid step {units.length(prov['grid_step_m'], 3)}"
-              if prov["grid_step_m"] else "exact layer-stack solution")
+    if prov.get("solver") == "fmm":
+        solver = f"Fourier modal method, orders N = {prov.get('fourier_orders')}"
+    elif prov["grid_step_m"]:
+        solver = f"FDFD, grid step {units.length(prov['grid_step_m'], 3)}"
+    else:
+        solver = "exact layer-stack solution"
     err = c["relative_error_estimate"]
     figures = [
         ("coupling integral |I|", f"{math.hypot(*c['integral_V']):.4g} V"),
@@ -198,7 +202,9 @@ def _coupling_text(result: dict) -> str:
                         f"({c['max_field_rule']})"))
     if c["damage_factor"] is not None:
         figures.append(("damage factor G/E_max", f"{c['damage_factor']:.4g}"))
-    figures.append(("relative error estimate", "n/a" if err is None else units.percent(err)))
+    figures.append(("relative error estimate",
+                    units.percent(err) if err is not None
+                    else "n/a (not estimated: [solver] refine = false or an exact solution)"))
     width = max(len(k) for k, _ in figures)
     e = result["electron"]
     lines = [f"{result['sample']['family']} sample ({solver})",

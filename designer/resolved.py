@@ -151,6 +151,14 @@ def _text(key: str, value) -> str:
     return str(value)
 
 
+def _sub_label(key: str) -> str:
+    """A nested key for people: the unit suffix goes, the value's text carries the unit."""
+    for suffix in ("_m", "_deg"):
+        if key.endswith(suffix):
+            key = key[: -len(suffix)]
+    return key.replace("_", " ")
+
+
 def sample_items(block: dict) -> list[tuple[str, str]]:
     """(label, text) pairs of a resolved ``sample`` block (for text and HTML)."""
     items = []
@@ -169,7 +177,7 @@ def sample_items(block: dict) -> list[tuple[str, str]]:
         elif value is None or (isinstance(value, list) and not value):
             continue
         elif isinstance(value, dict):
-            parts = [_text(k, v) if k == key else f"{k.replace('_', ' ')} {_text(k, v)}"
+            parts = [_text(k, v) if k == key else f"{_sub_label(k)} {_text(k, v)}"
                      for k, v in value.items() if v is not None]
             items.append((_LABELS.get(key, key.replace("_", " ")), ", ".join(parts)))
         elif key == "freeform_region":
