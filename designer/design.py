@@ -1569,7 +1569,8 @@ def comparison(result: DesignResult, start_eval: dict, design_eval: dict,
     if not check["within_rules"]:
         lines += [""] + start_check_lines(check)
     head = "start (moved)" if check["moved"] else "start (spec)"
-    lines += ["", f"  {'variable':28s} {head:>13s} {'optimized':>12s}   bounds"]
+    if p.config.keys:
+        lines += ["", f"  {'variable':28s} {head:>13s} {'optimized':>12s}   bounds"]
     for k in p.config.keys:
         lo, hi = p.config.bounds[k]
         lines.append(f"  {k:28s} {start_values[k]:13.5g} {best_values[k]:12.5g}   "

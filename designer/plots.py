@@ -195,13 +195,15 @@ def _height_scan(ax, ev) -> list:
     handles = []
     if run.map_z_m is not None:
         e0 = ev.peak_field_V_per_m
-        top = layout.structure_z_m[1]
+        sides = getattr(spec.sample, "sides", 1)
+        # between two rows there is no "above the top surface": heights are then z itself,
+        # as in the field map beside this panel
+        top = 0.0 if sides == 2 else layout.structure_z_m[1]
         h = (np.asarray(run.map_z_m) - top) * NM
         beta = np.abs(np.asarray(beta_from_integral(run.map_z_integral_V * e0, ev.omega)))
         ax.plot(h, beta, color="0.15", lw=1.6, label="|β_c| at each height")
         z_e = (layout.path.z_m - top) * NM
         b_e = abs(complex(beta_from_integral(run.integral_V * e0, ev.omega)))
-        sides = getattr(spec.sample, "sides", 1)
         if sides != 2 and b_e > 0:
             from designer.families.base import decay_length
 
@@ -211,7 +213,8 @@ def _height_scan(ax, ev) -> list:
         ax.axvline(z_e, color=drawing.ELECTRON, lw=1.8, label="electron height")
         if np.all(beta > 0):
             ax.set_yscale("log")
-        ax.set_xlabel("height above the top surface (nm)")
+        ax.set_xlabel("electron height z (nm), as in the field map" if sides == 2
+                      else "height above the top surface (nm)")
         ax.set_ylabel("|β_c|")
         ax.set_title("coupling versus electron height", fontsize=10)
         handles = ax.legend(fontsize=7, loc="upper right").legend_handles
@@ -323,7 +326,7 @@ def evaluation_figure(ev) -> Figure:
     layout = ev.run.layout
     exact = ev.run.fields is None
     fig = Figure(figsize=(15.0, 10.0))
-    gs = fig.add_gridspec(2, 6, height_ratios=(1.3, 1.0), hspace=0.5, wspace=1.1)
+    gs = fig.add_gridspec(2, 6, height_ratios=(1.3, 1.0), hspace=0.5, wspace=1.6)
     ax_s = fig.add_subplot(gs[0, 0:2])
     ax_f = fig.add_subplot(gs[0, 2:4])
     ax_h = fig.add_subplot(gs[0, 4:6])
