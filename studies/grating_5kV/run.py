@@ -191,6 +191,8 @@ def _figure(s: dict, beta_map: np.ndarray):
     matplotlib.use("Agg")
     from matplotlib.figure import Figure
 
+    from designer import drawing
+
     fig = Figure(figsize=(10, 4.2))
     ax, bx = fig.subplots(1, 2, gridspec_kw={"width_ratios": [1.4, 1]})
     sc = s["scan"]
@@ -201,15 +203,19 @@ def _figure(s: dict, beta_map: np.ndarray):
     ax.plot(b["duty_cycle"], b["tooth_height_nm"], "s", mfc="none", mec="w", ms=10,
             label="best scan point")
     d = s["design"]
-    ax.plot(d["duty_cycle"], d["tooth_height_nm"], "r*", ms=12, label="design (L-BFGS-B)")
+    ax.plot(d["duty_cycle"], d["tooth_height_nm"], "*", color=drawing.LASER, mec="k",
+            ms=14, label="design (L-BFGS-B)")
+    ax.text(0.02, 0.98, "blank: outside the fabrication rules", transform=ax.transAxes,
+            va="top", fontsize=8)
     ax.set_xlabel("duty cycle")
     ax.set_ylabel("tooth height (nm)")
     ax.set_title(f"design / best scan = {s['design_over_scan_best']:.4f} (converged grid)")
     ax.legend(loc="lower right", fontsize=8)
-    for name, style in (("tooth_height", "o-"), ("duty_cycle", "s-")):
+    for (name, style), colour in zip((("tooth_height", "o-"), ("duty_cycle", "s-")),
+                                     (drawing.ELECTRON, drawing.LASER)):
         j = s["jitter_scans"][name]
         v = np.asarray(j["coupling"])
-        bx.plot(j["offsets_nm"], v / v.mean(), style, ms=3,
+        bx.plot(j["offsets_nm"], v / v.mean(), style, ms=3, color=colour,
                 label=f"{name.replace('_', ' ')} (ripple {j['ripple']:.2%})")
     bx.set_xlabel("offset from the design (nm of height / of tooth width)")
     bx.set_ylabel("coupling / mean (default grid)")
