@@ -117,12 +117,20 @@ def _mid_plane(ax, fig, ev, sol, point):
     j = _film_medium(spec)
     zb, zt = medium_bounds(sol, j)
     mag = field_magnitude(sol, j, xx.ravel(), yy.ravel(), [0.5 * (zb + zt)])[0]
-    im = ax.imshow(mag.reshape(xx.shape), origin="lower", cmap=drawing_cmap(),
+    _top_map(ax, fig, spec, point, (x, y, xx, yy), mag, drawing_cmap(),
+             "|E| per V/m incident", "|E| in the film's mid-plane")
+
+
+def _top_map(ax, fig, spec, point, grid, values, cmap, label, title):
+    """A quantity over the top-view grid of ``_top_grid`` with the hole outlines and the
+    electron's crossing point."""
+    x, y, xx, yy = grid
+    im = ax.imshow(np.reshape(values, xx.shape), origin="lower", cmap=cmap,
                    extent=[x[0] * NM, x[-1] * NM, y[0] * NM, y[-1] * NM])
-    fig.colorbar(im, ax=ax, label="|E| per V/m incident", shrink=0.85)
+    fig.colorbar(im, ax=ax, label=label, shrink=0.85)
     _outline(ax, spec, x, y, xx, yy)
     _electron(ax, spec, point)
-    ax.set_title("|E| in the film's mid-plane", fontsize=9)
+    ax.set_title(title, fontsize=9)
     ax.set_xlabel("x (nm)")
     ax.set_ylabel("y (nm)")
 
@@ -248,14 +256,8 @@ def _cell_map(ax, fig, ev, sol, point):
     dx, dy = xx.ravel() - point[0], yy.ravel() - point[1]
     integral = np.exp(1j * (np.outer(dx, kx) + np.outer(dy, ky))) @ ig
     beta = np.abs(np.asarray(beta_from_integral(integral * ev.peak_field_V_per_m, ev.omega)))
-    im = ax.imshow(beta.reshape(xx.shape), origin="lower", cmap="viridis",
-                   extent=[x[0] * NM, x[-1] * NM, y[0] * NM, y[-1] * NM])
-    fig.colorbar(im, ax=ax, label="|β_c| at the peak field", shrink=0.85)
-    _outline(ax, spec, x, y, xx, yy)
-    _electron(ax, spec, point)
-    ax.set_title("coupling versus where the electron crosses", fontsize=9)
-    ax.set_xlabel("x (nm)")
-    ax.set_ylabel("y (nm)")
+    _top_map(ax, fig, spec, point, (x, y, xx, yy), beta, "viridis",
+             "|β_c| at the peak field", "coupling versus where the electron crosses")
 
 
 def _orders_panel(ax, ev):
