@@ -55,11 +55,11 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
-from scipy.constants import c as C0
 
 from designer import io as vio
 from designer import report as rp
 from designer.errors import UsageError, VelomatchError
+from designer.laser import spectral_fwhm_m
 from designer.sweep import Job, _default_evaluator, _progress_bar, run_jobs
 
 FAB_ERROR_NM = 10.0
@@ -72,9 +72,6 @@ MAX_ANGLE_DEG = 89.5
 _POSITION_KEYS = ("center", "centre", "shift")
 # how a candidate is lit and crossed is part of its design, not of the footing
 OWN_LASER_KEYS = ("angle_deg", "from", "azimuth_deg", "polarization")
-# transform-limited Gaussian pulse: intensity FWHM in time x in frequency
-# (A. E. Siegman, Lasers, 1986, ch. 9: 2 ln 2 / pi)
-TIME_BANDWIDTH = 2.0 * math.log(2.0) / math.pi
 AVERAGE_POINTS = 201
 
 
@@ -392,7 +389,7 @@ def laser_spreads(raw: dict) -> dict:
     tau = laser.get("duration_fs")
     w0 = laser.get("spot_radius_um")
     return {"spectral_fwhm_nm": (None if tau is None else
-                                 TIME_BANDWIDTH * lam_m**2 / (C0 * float(tau) * 1e-15) * 1e9),
+                                 spectral_fwhm_m(lam_m, float(tau) * 1e-15) * 1e9),
             "angular_half_width_deg": (None if w0 is None else
                                        math.degrees(lam_m / (math.pi * float(w0) * 1e-6)))}
 

@@ -80,6 +80,7 @@ from scipy import constants
 from designer import io as vio
 from designer.errors import SpecError, UsageError
 from designer.families import get_family
+from designer.laser import spectral_fwhm_m
 from designer.spec import Spec, dump_spec, load_spec, parse_spec
 from designer.tables import TableReader
 
@@ -152,11 +153,6 @@ def pulse_nodes(wavelength_m: float, duration_s: float | None, n: int
     if np.any(omega <= 0):
         raise ValueError("the pulse is too short for its wavelength (negative frequencies)")
     return 2.0 * math.pi * constants.c / omega, w / math.sqrt(math.pi)
-
-
-def spectral_fwhm_m(wavelength_m: float, duration_s: float) -> float:
-    """Wavelength FWHM of the pulse's power spectrum (m): lambda^2 (2 ln2 / pi) / (c tau)."""
-    return wavelength_m**2 * 2.0 * math.log(2.0) / (math.pi * constants.c * duration_s)
 
 
 def _variables(spec: Spec) -> dict:

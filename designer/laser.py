@@ -138,3 +138,15 @@ def photon_energy_J(wavelength_m):
 def photon_energy_eV(wavelength_m):
     """Photon energy ``h c / (e lambda)`` (eV) for a vacuum wavelength (m)."""
     return const.h * _C / (const.e * wavelength_m)
+
+
+# transform-limited Gaussian pulse: intensity FWHM in time x in frequency
+# (A. E. Siegman, Lasers, 1986, ch. 9: 2 ln 2 / pi)
+TIME_BANDWIDTH = 2.0 * math.log(2.0) / math.pi
+
+
+def spectral_fwhm_m(wavelength_m, duration_fwhm_s):
+    """Wavelength FWHM (m) of the power spectrum of a transform-limited Gaussian pulse of
+    intensity FWHM ``duration_fwhm_s``: ``dlambda = TIME_BANDWIDTH lambda^2 / (c tau)``,
+    TIME_BANDWIDTH = 2 ln2 / pi (Siegman, *Lasers*, 1986, ch. 9)."""
+    return TIME_BANDWIDTH * wavelength_m**2 / (const.c * duration_fwhm_s)
