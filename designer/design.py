@@ -1200,6 +1200,22 @@ def _corrupt(path: Path, what: str) -> UsageError:
                       "instead of --resume")
 
 
+def matching_checkpoint(path: Path, spec: Spec, config) -> dict:
+    """The checkpoint at ``path`` to resume from, refused (UsageError) when it is missing
+    or belongs to another spec or other ``[optimize]`` settings (``config.identity()``)."""
+    out = path.parent
+    if not path.exists():
+        raise UsageError(f"{out}: no {path.name} to resume from")
+    saved = _read_checkpoint(path)
+    if saved["spec_sha256"] != spec.sha256:
+        raise UsageError(f"{out}: the checkpoint belongs to a different spec "
+                         "(its sha256 differs); resume with the same spec file")
+    if saved["config"] != json.loads(vio.dumps(config.identity())):
+        raise UsageError(f"{out}: the [optimize] settings differ from the checkpointed "
+                         "run (only --iterations may change on resume)")
+    return saved
+
+
 def _read_checkpoint(path: Path) -> dict:
     """The saved checkpoint, or one UsageError when it is unreadable or incomplete."""
     try:
@@ -1230,15 +1246,7 @@ def run_design(spec: Spec, out_dir: str | Path, config: DesignConfig, *, resume:
     ck_path = out / CHECKPOINT
     saved = None
     if resume:
-        if not ck_path.exists():
-            raise UsageError(f"{out}: no {CHECKPOINT} to resume from")
-        saved = _read_checkpoint(ck_path)
-        if saved["spec_sha256"] != spec.sha256:
-            raise UsageError(f"{out}: the checkpoint belongs to a different spec "
-                             "(its sha256 differs); resume with the same spec file")
-        if saved["config"] != json.loads(vio.dumps(config.identity())):
-            raise UsageError(f"{out}: the [optimize] settings differ from the checkpointed "
-                             "run (only --iterations may change on resume)")
+        saved = matching_checkpoint(ck_path, spec, config)
         try:
             scale = float.fromhex(saved["scale"])
         except (TypeError, ValueError):

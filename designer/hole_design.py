@@ -573,17 +573,9 @@ def run_hole_design(spec: Spec, out_dir, config: HoleDesignConfig, *, resume: bo
     allowed = set(check["remaining"])
     fobj = objective or cached_objective(spec, config)
     if resume:
-        from designer.design import _read_checkpoint
+        from designer.design import matching_checkpoint
 
-        if not ck.exists():
-            raise UsageError(f"{out}: no {CHECKPOINT} to resume from")
-        saved = _read_checkpoint(ck)
-        if saved["spec_sha256"] != spec.sha256:
-            raise UsageError(f"{out}: the checkpoint belongs to a different spec "
-                             "(its sha256 differs); resume with the same spec file")
-        if saved["config"] != json.loads(vio.dumps(config.identity())):
-            raise UsageError(f"{out}: the [optimize] settings differ from the checkpointed "
-                             "run (only --iterations may change on resume)")
+        saved = matching_checkpoint(ck, spec, config)
         try:
             d = saved["starts"][0]
             run = HoleRun(np.array(d["u"], dtype=float), list(d["history"]), d["reason"],
