@@ -263,9 +263,10 @@ def _figure(s: dict, beta_map: np.ndarray, dense_map: np.ndarray):
     ax, cx, bx = fig.subplots(1, 3, gridspec_kw={"width_ratios": [1.3, 1.1, 1]})
     sc, dn, d = s["scan"], s["dense"], s["design"]
     b = sc["best_converged"]
-    im = ax.pcolormesh(sc["duty_cycle"], sc["tooth_height_nm"], beta_map, shading="nearest",
-                       cmap="viridis")
-    fig.colorbar(im, ax=ax, label="|β_c| (default grid, per V/m)")
+    unit = 1e-7     # |β_c| per V/m, shown in units of 1e-7 (no offset text over the title)
+    im = ax.pcolormesh(sc["duty_cycle"], sc["tooth_height_nm"], beta_map / unit,
+                       shading="nearest", cmap="viridis")
+    fig.colorbar(im, ax=ax, label="|β_c| (default grid, 10⁻⁷ per V/m)")
     ax.plot(b["duty_cycle"], b["tooth_height_nm"], "s", mfc="none", mec="w", ms=10,
             label="best scan point")
     ax.plot(d["duty_cycle"], d["tooth_height_nm"], "*", color=drawing.LASER, mec="k",
@@ -279,10 +280,10 @@ def _figure(s: dict, beta_map: np.ndarray, dense_map: np.ndarray):
     ax.set_ylabel("tooth height (nm)")
     ax.set_title(f"scan; design / best scan point = {s['design_over_scan_best']:.4f}",
                  fontsize=10)
-    ax.legend(loc="lower right", fontsize=8)
-    im = cx.pcolormesh(dn["duty_cycle"], dn["tooth_height_nm"], dense_map, shading="nearest",
-                       cmap="viridis")
-    fig.colorbar(im, ax=cx, label="|β_c| (converged grid, per V/m)")
+    ax.legend(loc="lower right", fontsize=8, facecolor="0.35", labelcolor="w")
+    im = cx.pcolormesh(dn["duty_cycle"], dn["tooth_height_nm"], dense_map / unit,
+                       shading="nearest", cmap="viridis")
+    fig.colorbar(im, ax=cx, label="|β_c| (converged grid, 10⁻⁷ per V/m)")
     db = dn["best"]
     cx.plot(db["duty_cycle"], db["tooth_height_nm"], "s", mfc="none", mec="w", ms=10,
             label="dense maximum")
@@ -291,9 +292,9 @@ def _figure(s: dict, beta_map: np.ndarray, dense_map: np.ndarray):
                 ms=14, label="design")
     cx.set_xlabel("duty cycle")
     cx.set_ylabel("tooth height (nm)")
-    cx.set_title(f"dense scan; design / dense maximum = {s['design_over_dense_best']:.4f}",
-                 fontsize=10)
-    cx.legend(loc="lower right", fontsize=8)
+    cx.set_title(f"dense scan; design / dense maximum = {s['design_over_dense_best']:.4f}"
+                 + (" (maximum on the rim)" if db["on_edge"] else ""), fontsize=10)
+    cx.legend(loc="lower right", fontsize=8, facecolor="0.35", labelcolor="w")
     for (name, style), colour in zip((("tooth_height", "o-"), ("duty_cycle", "s-")),
                                      (drawing.ELECTRON, drawing.LASER)):
         j = s["jitter_scans"][name]
