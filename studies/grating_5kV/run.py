@@ -275,7 +275,7 @@ def _figure(s: dict, beta_map: np.ndarray, dense_map: np.ndarray):
     y0, y1 = dn["tooth_height_nm"][0], dn["tooth_height_nm"][-1]
     ax.plot([x0, x1, x1, x0, x0], [y0, y0, y1, y1, y0], "w--", lw=1, label="dense scan")
     ax.text(0.02, 0.98, "blank: outside the fabrication rules", transform=ax.transAxes,
-            va="top", fontsize=8, color="w")
+            va="top", fontsize=8, bbox=dict(facecolor="w", alpha=0.8, lw=0))
     ax.set_xlabel("duty cycle")
     ax.set_ylabel("tooth height (nm)")
     ax.set_title(f"scan; design / best scan point = {s['design_over_scan_best']:.4f}",
