@@ -263,38 +263,35 @@ def _figure(s: dict, beta_map: np.ndarray, dense_map: np.ndarray):
     ax, cx, bx = fig.subplots(1, 3, gridspec_kw={"width_ratios": [1.3, 1.1, 1]})
     sc, dn, d = s["scan"], s["dense"], s["design"]
     b = sc["best_converged"]
-    unit = 1e-7     # |β_c| per V/m, shown in units of 1e-7 (no offset text over the title)
-    im = ax.pcolormesh(sc["duty_cycle"], sc["tooth_height_nm"], beta_map / unit,
-                       shading="nearest", cmap="viridis")
-    fig.colorbar(im, ax=ax, label="|β_c| (default grid, 10⁻⁷ per V/m)")
-    ax.plot(b["duty_cycle"], b["tooth_height_nm"], "s", mfc="none", mec="w", ms=10,
-            label="best scan point")
-    ax.plot(d["duty_cycle"], d["tooth_height_nm"], "*", color=drawing.LASER, mec="k",
-            ms=14, label="design (L-BFGS-B)")
     x0, x1 = dn["duty_cycle"][0], dn["duty_cycle"][-1]
     y0, y1 = dn["tooth_height_nm"][0], dn["tooth_height_nm"][-1]
+
+    def map_panel(axis, grid, values, grid_name, best, best_label, design_label, title):
+        # |β_c| per V/m, shown in units of 1e-7 (no offset text over the title)
+        im = axis.pcolormesh(grid["duty_cycle"], grid["tooth_height_nm"], values / 1e-7,
+                             shading="nearest", cmap="viridis")
+        fig.colorbar(im, ax=axis, label=f"|β_c| ({grid_name} grid, 10⁻⁷ per V/m)")
+        axis.plot(best["duty_cycle"], best["tooth_height_nm"], "s", mfc="none", mec="w",
+                  ms=10, label=best_label)
+        if design_label:
+            axis.plot(d["duty_cycle"], d["tooth_height_nm"], "*", color=drawing.LASER,
+                      mec="k", ms=14, label=design_label)
+        axis.set_xlabel("duty cycle")
+        axis.set_ylabel("tooth height (nm)")
+        axis.set_title(title, fontsize=10)
+
+    map_panel(ax, sc, beta_map, "default", b, "best scan point", "design (L-BFGS-B)",
+              f"scan; design / best scan point = {s['design_over_scan_best']:.4f}")
     ax.plot([x0, x1, x1, x0, x0], [y0, y0, y1, y1, y0], "w--", lw=1, label="dense scan")
     ax.text(0.02, 0.98, "blank: outside the fabrication rules", transform=ax.transAxes,
             va="top", fontsize=8, bbox=dict(facecolor="w", alpha=0.8, lw=0))
-    ax.set_xlabel("duty cycle")
-    ax.set_ylabel("tooth height (nm)")
-    ax.set_title(f"scan; design / best scan point = {s['design_over_scan_best']:.4f}",
-                 fontsize=10)
-    ax.legend(loc="lower right", fontsize=8, facecolor="0.35", labelcolor="w")
-    im = cx.pcolormesh(dn["duty_cycle"], dn["tooth_height_nm"], dense_map / unit,
-                       shading="nearest", cmap="viridis")
-    fig.colorbar(im, ax=cx, label="|β_c| (converged grid, 10⁻⁷ per V/m)")
     db = dn["best"]
-    cx.plot(db["duty_cycle"], db["tooth_height_nm"], "s", mfc="none", mec="w", ms=10,
-            label="dense maximum")
-    if x0 <= d["duty_cycle"] <= x1 and y0 <= d["tooth_height_nm"] <= y1:
-        cx.plot(d["duty_cycle"], d["tooth_height_nm"], "*", color=drawing.LASER, mec="k",
-                ms=14, label="design")
-    cx.set_xlabel("duty cycle")
-    cx.set_ylabel("tooth height (nm)")
-    cx.set_title(f"dense scan; design / dense maximum = {s['design_over_dense_best']:.4f}"
-                 + (" (maximum on the rim)" if db["on_edge"] else ""), fontsize=10)
-    cx.legend(loc="lower right", fontsize=8, facecolor="0.35", labelcolor="w")
+    inside = x0 <= d["duty_cycle"] <= x1 and y0 <= d["tooth_height_nm"] <= y1
+    map_panel(cx, dn, dense_map, "converged", db, "dense maximum", "design" if inside else None,
+              f"dense scan; design / dense maximum = {s['design_over_dense_best']:.4f}"
+              + (" (maximum on the rim)" if db["on_edge"] else ""))
+    for axis in (ax, cx):
+        axis.legend(loc="lower right", fontsize=8, facecolor="0.35", labelcolor="w")
     for (name, style), colour in zip((("tooth_height", "o-"), ("duty_cycle", "s-")),
                                      (drawing.ELECTRON, drawing.LASER)):
         j = s["jitter_scans"][name]
