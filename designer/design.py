@@ -1710,7 +1710,7 @@ def refined_evaluation(spec: Spec, ev, coarse: dict, fine_step_m: float | None, 
         out = vio.require_finite(out)
         out["note"] = (f"step {fine_step_m:.4g} m = the finer of the start's and the design's "
                        f"evaluation steps / {factor:g}; relative_error_estimate from solves at "
-                       "about 1.5x and 2.25x that step (three-grid Richardson with the "
+                       "about 1/1.5x and 1.5x that step (three-grid Richardson with the "
                        "observed order)")
     elif ev.solver == "fmm":
         say(f"re-evaluating the {what} design with the Fourier-order error estimate")

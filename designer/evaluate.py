@@ -10,8 +10,9 @@ solution where the sample is a planar stack (unpatterned membranes, prisms);
 solver when the sample is layered and FDFD otherwise.
 
 Error estimate (FDFD): the coupling is computed at the chosen step h and again at
-about 1.5 h and 2.25 h (each rounded to whole cells per period); the observed order of
-convergence p and the error of the reported value follow from the three results
+about h / 1.5 and 1.5 h (each rounded to whole cells per period); the observed order of
+convergence p follows from the three results, and the error of the reported value (the
+one at h) is its distance from the Richardson extrapolation of the finer pair
 (L. F. Richardson, Phil. Trans. R. Soc. A 210, 307, 1911; the three-grid procedure of
 I. B. Celik et al., J. Fluids Eng. 130, 078001, 2008), see :func:`three_grid_estimate`.
 The layer-stack solver is exact up to rounding; its estimate is 0.
@@ -46,7 +47,7 @@ from designer.spec import Spec, parse_spec
 
 C0 = constants.c
 CORNER_RULE = "cells within corner_radius of a polygon corner excluded"
-ERROR_GRID_FACTORS = (1.5, 2.25)   # the two coarser grids of the error estimate (x step)
+ERROR_GRID_FACTORS = (1 / 1.5, 1.5)  # the finer and the coarser grid of the error estimate (x step)
 SIMILAR_WINDOW = 0.12              # ... each chosen within +-12 % of that (similar_step)
 SIMILAR_CANDIDATES = 49
 
@@ -128,8 +129,9 @@ def observed_order(e21: complex, e32: complex, r21: float, r32: float) -> float 
     return 0.5 * (lo + hi)
 
 
-def three_grid_estimate(values, steps) -> ErrorEstimate:
-    """Discretization error of ``values[0]`` (complex results at ``steps`` h1 < h2 < h3).
+def three_grid_estimate(values, steps, at: int = 0) -> ErrorEstimate:
+    """Discretization error of ``values[at]`` (complex results at ``steps`` h1 < h2 < h3;
+    ``at`` = 0, the finest, or 1, the middle one).
 
     With ``I(h) = I* + C h^p``: ``e21 = I2 − I1``, ``e32 = I3 − I2`` and
     ``|e32 / e21| = r21^p (r32^p − 1) / (r21^p − 1)``, ``r21 = h2/h1``, ``r32 = h3/h2``,
@@ -137,7 +139,9 @@ def three_grid_estimate(values, steps) -> ErrorEstimate:
     ``p = ln|e32/e21| / ln r``), and the error of I1 is ``|e21| / (r21^p − 1) / |I1|``
     (L. F. Richardson, Phil. Trans. R. Soc. A 210, 307, 1911; I. B. Celik, U. Ghia,
     P. J. Roache, C. J. Freitas, H. Coleman, P. E. Raad, J. Fluids Eng. 130, 078001,
-    2008, who also limit the order used).
+    2008, who also limit the order used).  The error of I2 is its distance from the
+    finer pair's extrapolation ``I* = I1 + (I1 − I2) / (r21^p − 1)``:
+    ``|e21| r21^p / (r21^p − 1) / |I2|``.
 
     The order used is the observed one clipped to ORDER_RANGE = [1, 2]: the scheme is
     second order where interfaces are smooth (subpixel averaging) and first order near
@@ -145,27 +149,40 @@ def three_grid_estimate(values, steps) -> ErrorEstimate:
     asymptotic range rather than of a faster or slower scheme.  When the differences do
     not shrink in one direction at all (the error is then dominated by where the
     interfaces fall inside the cells, which changes erratically from grid to grid), the
-    estimate is ``max(|e21|, |e32|) / (r^2 − 1)``: the larger difference with the
-    nominal second order.  ``note`` says which rule was used.
+    nominal second order is used: for I1 the larger difference,
+    ``max(|e21|, |e32|) / (r^2 − 1)``; for I2 the finer pair as above.  ``note`` says
+    which rule was used.  Results from an observed order, and the middle grid's, are
+    times SAFETY_FACTOR (Roache's factor for three grids).
     """
+    if at not in (0, 1):
+        raise ValueError(f"at = {at!r}: the finest (0) or the middle (1) result")
     i1, i2, i3 = (complex(v) for v in values)
     h1, h2, h3 = (float(h) for h in steps)
     r21, r32 = h2 / h1, h3 / h2
     e21, e32 = i2 - i1, i3 - i2
-    scale = abs(i1) if i1 != 0 else 1.0
+    target = (i1, i2)[at]
+    scale = abs(target) if target != 0 else 1.0
     if abs(e21) == 0.0:
         return ErrorEstimate(0.0, None, ORDER_RANGE[1], "the two finest grids agree exactly")
     p = observed_order(e21, e32, r21, r32)
     if p is None:
         q = ORDER_RANGE[1]
-        err = max(abs(e21) / (r21**q - 1.0), abs(e32) / (r32**q - 1.0)) / scale
-        return ErrorEstimate(err, None, q, "the differences between the three grids do "
-                             "not converge in one direction (not in the asymptotic "
-                             "range): the larger difference at the nominal second order")
-    q = min(max(p, ORDER_RANGE[0]), ORDER_RANGE[1])
-    note = f"observed order {p:.2f} (three grids)"
-    if q != p:
-        note += f", used {q:g} (limited to [{ORDER_RANGE[0]:g}, {ORDER_RANGE[1]:g}])"
+        note = ("the differences between the three grids do not converge in one direction "
+                "(not in the asymptotic range): ")
+    else:
+        q = min(max(p, ORDER_RANGE[0]), ORDER_RANGE[1])
+        note = f"observed order {p:.2f} (three grids)"
+        if q != p:
+            note += f", used {q:g} (limited to [{ORDER_RANGE[0]:g}, {ORDER_RANGE[1]:g}])"
+    if at == 1:
+        note += ("; " if p is not None else "the nominal second order; ") + (
+            "the middle grid's distance from the finer pair's extrapolation")
+        err = abs(e21) * r21**q / (r21**q - 1.0)
+        return ErrorEstimate(SAFETY_FACTOR * err / scale, p, q, note)
+    if p is None:
+        err = max(abs(e21) / (r21**q - 1.0), abs(e32) / (r32**q - 1.0))
+        return ErrorEstimate(err / scale, None, q,
+                             note + "the larger difference at the nominal second order")
     # the error of I1 from the finer pair, and from the coarser pair carried down to h1;
     # equal for a clean power law, the larger one where the order had to be limited
     fine_pair = abs(e21) / (r21**q - 1.0)
@@ -622,15 +639,18 @@ def evaluate(spec: Spec, *, grid_step_m: float | None = None, refine: bool | Non
         run = run_fdfd(spec, h, force=spec.solver.force)
         rel_error = None
         if refine:
-            coarse = []
+            # a finer and a coarser grid around h: the error of the result at h is
+            # measured against the finer pair's extrapolation, so it includes where this
+            # grid's interfaces happen to fall in their cells (three_grid_estimate, at=1)
+            around = []
             for factor in ERROR_GRID_FACTORS:
                 step = similar_step(spec, run.layout, factor * run.grid_step_m)
                 say(f"FDFD solve, requested step {step * 1e9:.3g} nm (error estimate)")
-                coarse.append(run_fdfd(spec, step, force=True, with_map=False))
-            steps = [run.grid_step_m] + [c.grid_step_m for c in coarse]
+                around.append(run_fdfd(spec, step, force=True, with_map=False))
+            trio = (around[0], run, around[1])
+            steps = [r.grid_step_m for r in trio]
             if abs(run.integral_V) > 0 and steps[0] < steps[1] < steps[2]:
-                est = three_grid_estimate([run.integral_V] + [c.integral_V for c in coarse],
-                                          steps)
+                est = three_grid_estimate([r.integral_V for r in trio], steps, at=1)
                 rel_error = est.relative_error
                 error_info = dict(error_order=est.observed_order,
                                   error_order_used=est.order_used,
