@@ -133,12 +133,15 @@ def patterned_modes(mats, kx, ky):
     """Modes ``(q, W, V, Z)`` of a patterned layer from its permittivity matrices."""
     a, exx, exy, eyx, eyy = mats
     m = kx.shape[0]
+    kx, ky = kx + 0j, ky + 0j
     one = jnp.eye(m, dtype=complex)
-    kxd, kyd = jnp.diag(kx + 0j), jnp.diag(ky + 0j)
-    p = jnp.block([[kxd @ a @ kyd, one - kxd @ a @ kxd],
-                   [kyd @ a @ kyd - one, -kyd @ a @ kxd]])
-    qm = jnp.block([[-kxd @ kyd - eyx, kxd @ kxd - eyy],
-                    [exx - kyd @ kyd, kyd @ kxd + exy]])
+    # Kx, Ky are diagonal: row and column scalings instead of matrix products (a dense
+    # product costs as much as the rest of the assembly, and twice that in reverse mode)
+    akx, aky = a * kx[None, :], a * ky[None, :]
+    p = jnp.block([[kx[:, None] * aky, one - kx[:, None] * akx],
+                   [ky[:, None] * aky - one, -ky[:, None] * akx]])
+    qm = jnp.block([[-jnp.diag(kx * ky) - eyx, jnp.diag(kx * kx) - eyy],
+                    [exx - jnp.diag(ky * ky), jnp.diag(ky * kx) + exy]])
     lam, w = eig(p @ qm)
     q = branch(lam)
     v = (qm @ w) / q[None, :]
