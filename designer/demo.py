@@ -104,15 +104,20 @@ DECAY_OFFSETS = (0.5, 1.0, 1.5)
 # ---------------------------------------------------------------------------------
 # output folders
 # ---------------------------------------------------------------------------------
-def prepare_study_dir(path: str | Path, *, overwrite: bool = False) -> Path:
+def prepare_study_dir(path: str | Path, *, overwrite: bool = False,
+                      resume: bool = False) -> Path:
     """Create ``path`` for a study run; see the module docstring for the rule.
 
     Raises UsageError when the folder holds files the study did not write, or
-    earlier study files without ``overwrite``.
+    earlier study files without ``overwrite``.  ``resume`` keeps everything in the
+    folder (a run killed before its manifest was written left its files unlisted);
+    the study itself checks that the folder holds its own earlier run.
     """
+    if overwrite and resume:
+        raise UsageError("--overwrite and --resume: choose one")
     out = Path(path)
     vio.open_output_dir(out)   # checked, created and locked for the whole run
-    if out.exists():
+    if out.exists() and not resume:
         present = {p.relative_to(out).as_posix() for p in out.rglob("*")
                    if p.is_file() and not vio.is_bookkeeping(p.name)}
         manifest = out / MANIFEST
@@ -140,10 +145,11 @@ def prepare_study_dir(path: str | Path, *, overwrite: bool = False) -> Path:
 
 
 def study_main(argv, *, description: str, default_out: Path, quick_help: str, run,
-               closing) -> dict:
+               closing, resumable: bool = False) -> dict:
     """The shape every study script shares.
 
-    Parse ``--quick``, ``--out`` and ``--overwrite``; prepare the output folder
+    Parse ``--quick``, ``--out`` and ``--overwrite`` (and ``--resume`` when the study
+    is ``resumable``: then ``run(out, quick, resume)``); prepare the output folder
     (:func:`prepare_study_dir`); ``summary = run(out, quick)``; add the wall time and
     write ``summary.json``; list everything written in the manifest (so a later
     ``--overwrite`` may replace it); ``closing(out, summary)``; print the safety note.
@@ -157,11 +163,15 @@ def study_main(argv, *, description: str, default_out: Path, quick_help: str, ru
     p.add_argument("--quick", action="store_true", help=quick_help)
     p.add_argument("--out", default=str(default_out), help="output folder")
     p.add_argument("--overwrite", action="store_true", help="replace an earlier run in --out")
+    if resumable:
+        p.add_argument("--resume", action="store_true",
+                       help="continue an interrupted run in --out where it stopped")
     args = p.parse_args(argv)
+    resume = bool(getattr(args, "resume", False))
     t0 = time.monotonic()
-    out = prepare_study_dir(args.out, overwrite=args.overwrite)
+    out = prepare_study_dir(args.out, overwrite=args.overwrite, resume=resume)
     try:
-        summary = run(out, args.quick)
+        summary = run(out, args.quick, resume) if resumable else run(out, args.quick)
         summary["wall_s"] = time.monotonic() - t0
         vio.write_json(out / "summary.json", summary)
     finally:

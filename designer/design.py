@@ -31,7 +31,8 @@ eroded/nominal/dilated triple whose worst case is the objective (designer.freefo
 B. Bourdin, IJNME 50, 2143, 2001; F. Wang, B. S. Lazarov & O. Sigmund, Struct.
 Multidisc. Optim. 43, 767, 2011).  The filter radius is
 ``freeform.filter_radius_for_length(max(min_feature, min_gap), threshold_spread)``.
-The result is the *final* iterate binarized (nominal design at beta = inf); its figures
+The result is the best rule-clean of the run's end candidates binarized (the final
+iterate; with Adam also the last accepted one; nominal design at beta = inf); its figures
 are what the run reports, ``design.toml`` stores it as ``density.npy`` beside it, and
 freeform.pattern_rule_check measures its smallest solid and void features
 (``comparison.json`` -> ``freeform``).  The loss-change stop rule is off for density
@@ -1134,13 +1135,26 @@ def pattern_record(problem: DesignProblem, u, pattern, multipliers=None) -> dict
 def _best_of(problem: DesignProblem, st: StartState) -> tuple[np.ndarray, dict]:
     """The best evaluated iterate of a start (the final point evaluated too).
 
-    Free-form density: the final iterate, binarized (earlier iterates are gray designs
-    at a smaller projection sharpness, not comparable)."""
+    Free-form density: the binarized candidates of the run's end (the final iterate and,
+    for Adam, the last accepted one, which differ when the last step was not yet
+    checked), each evaluated as binarized; the rule-clean, feasible one with the largest
+    objective wins.  Gray iterates of earlier, smaller projection sharpness are not
+    comparable and are not candidates."""
     u_last = np.asarray(st.u)
     if problem.chain is not None:
-        rec = pattern_record(problem, u_last, problem.binarized(u_last), st.multipliers)
-        rec["iteration"] = len(st.losses)
-        return u_last, rec
+        cands = [u_last]
+        if st.accepted is not None and not np.array_equal(st.accepted["u"], u_last):
+            cands.append(np.asarray(st.accepted["u"]))
+        scored = []
+        for u in cands:
+            pattern = problem.binarized(u)
+            rec = pattern_record(problem, u, pattern, st.multipliers)
+            rec["iteration"] = len(st.losses)
+            clean = not _violations(problem, u, pattern)
+            feasible = max(rec["constraints"], default=0.0) <= FEASIBILITY_TOL
+            scored.append(((clean, feasible, rec["objective"]), u, rec))
+        _, u, rec = max(scored, key=lambda c: c[0])
+        return u, rec
     aux = (problem.masks(u_last), np.asarray(st.multipliers), problem.scale)
     loss, extras = problem.evaluate(u_last, aux)
     last = _record(problem, len(st.losses), u_last, loss, extras, None, None)

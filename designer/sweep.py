@@ -532,7 +532,9 @@ def _load_json(path: Path) -> dict:
     return data
 
 
-def _cached(points_dir: Path, sha: str) -> dict | None:
+def cached_point(points_dir: Path, sha: str) -> dict | None:
+    """The stored record ``points_dir/<sha>.json`` of a finished point, or None when it
+    is missing, unreadable or not that point's."""
     try:
         data = _load_json(points_dir / f"{sha}.json")
     except (OSError, ValueError):
@@ -561,7 +563,7 @@ def run_sweep(plan: SweepPlan, out_dir: str | os.PathLike, *,
     shas = [point_sha256(r) for r in raws]
     records: dict[str, dict] = {}
     for sha in shas:
-        hit = _cached(points_dir, sha)
+        hit = cached_point(points_dir, sha)
         if hit is not None:
             records[sha] = hit
     todo = [i for i, sha in enumerate(shas) if sha not in records]

@@ -127,6 +127,48 @@ def test_density_optimizers_bounds_best_iterate_and_resume(tmp_path, optimizer):
     np.testing.assert_array_equal(resumed.best_u, result.best_u)
 
 
+def test_adam_density_reports_the_best_clean_end_candidate(tmp_path, monkeypatch):
+    """Adam's final iterate is a step not yet checked; the binarized final iterate and
+    the binarized last accepted one are both evaluated, and the rule-clean one with the
+    larger objective is the result (common practice, no source)."""
+    import dataclasses
+
+    spec = spec_of(FREEFORM, "adam")
+    result = run(spec, tmp_path / "a")
+    problem, st = result.problem, result.starts[0]
+    assert st.accepted is not None
+    final, accepted = np.asarray(st.u), np.asarray(st.accepted["u"])
+    scored = {}
+    for name, u in (("final", final), ("accepted", accepted)):
+        pattern = problem.binarized(u)
+        scored[name] = (d.pattern_record(problem, u, pattern)["objective"],
+                        d._violations(problem, u, pattern))
+    clean = [s[0] for s in scored.values() if not s[1]]
+    assert clean
+    assert result.best_record["objective"] == pytest.approx(max(clean), rel=1e-12)
+    # what design exports is the pattern of the reported candidate
+    assert not d._violations(problem, result.best_u)
+    n_keys = problem.n_keys
+    # an empty density as the final iterate: the last accepted candidate wins
+    empty = final.copy()
+    empty[n_keys:] = 0.0
+    u, rec = d._best_of(problem, dataclasses.replace(st, u=empty))
+    np.testing.assert_array_equal(u, accepted)
+    assert rec["objective"] == pytest.approx(scored["accepted"][0], rel=1e-12)
+    # a candidate that breaks a rule loses to a clean one with a smaller objective
+    flagged = accepted.copy()
+    real_check = d._violations
+    monkeypatch.setattr(d, "_violations", lambda p, u, pattern=None: (
+        ["planted"] if np.array_equal(u, flagged) else real_check(p, u, pattern)))
+    u, rec = d._best_of(problem, dataclasses.replace(st, u=empty))
+    np.testing.assert_array_equal(u, empty)
+    assert rec["objective"] < scored["accepted"][0]
+    monkeypatch.undo()
+    # with no accepted point kept (MMA, or after a multiplier update) the final iterate
+    u, _ = d._best_of(problem, dataclasses.replace(st, accepted=None))
+    np.testing.assert_array_equal(u, final)
+
+
 # ---------------------------------------------------------------------------------
 # L-BFGS-B: accepted steps never lose objective
 # ---------------------------------------------------------------------------------

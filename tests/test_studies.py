@@ -334,3 +334,42 @@ def test_onchip_accelerator_study(tmp_path):
     else:
         assert "skipped" in s["crosscheck"]
     assert (out / "side_by_side.png").is_file()
+
+
+def test_5kV_study_stores_each_solve_and_reads_it_back(tmp_path, monkeypatch):
+    # a killed scan resumes from the stored solves: the same (spec, grid step) is solved
+    # once, a value read back is the very float that was stored, another step or another
+    # spec is a new solve (common practice, no source)
+    from designer.api import load_spec
+
+    study = _load("grating_5kV")
+    calls = []
+    monkeypatch.setattr(study, "_coupling",
+                        lambda spec, step: calls.append((spec.sha256, step)) or 0.1 + step)
+    spec = load_spec(STUDIES / "grating_5kV" / "grating.toml")
+    other = study._spec_with(spec, 200.0, 0.5)
+    solve = study.stored_coupling(tmp_path / "points")
+    first = solve(spec, 3e-9)
+    again = study.stored_coupling(tmp_path / "points")(spec, 3e-9)   # a new process
+    assert again == first and len(calls) == 1
+    solve(spec, 1.5e-9)
+    solve(other, 3e-9)
+    assert len(calls) == 3 and len(list((tmp_path / "points").glob("*.json"))) == 3
+
+
+def test_study_resume_keeps_the_folder_and_refuses_a_foreign_one(tmp_path):
+    from designer.errors import UsageError
+
+    out = tmp_path / "run"
+    demo.prepare_study_dir(out)
+    (out / "points").mkdir()
+    (out / "points" / "a.json").write_text("{}")          # left by a killed run, unlisted
+    demo.prepare_study_dir(out, resume=True)
+    assert (out / "points" / "a.json").read_text() == "{}"
+    with pytest.raises(UsageError, match="choose one"):
+        demo.prepare_study_dir(out, overwrite=True, resume=True)
+    # the 5 kV study resumes only a folder that holds its own spec
+    (out / "spec.toml").write_text("# someone else's\n")
+    with pytest.raises(UsageError, match="no earlier run of this study"):
+        _load("grating_5kV").run_study(out, quick=True, resume=True, say=lambda m: None)
+    assert (out / "spec.toml").read_text() == "# someone else's\n"
