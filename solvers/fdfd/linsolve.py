@@ -195,7 +195,8 @@ class _SuperLU:
 
     def __del__(self):
         handle = getattr(self, "_handle", None)
-        if handle is not None:
+        # at interpreter shutdown the module's globals may already be gone
+        if handle is not None and SUPERLU is not None:
             SUPERLU.release(handle)
 
 
