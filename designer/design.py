@@ -1486,6 +1486,9 @@ def figure_errors(refined: dict, coarse: dict) -> dict:
     return rows
 
 
+UNRESOLVED_START = 0.5   # a start known to no better than this has no meaningful ratio
+
+
 def gain_of(start: dict, optimized: dict) -> dict:
     """Optimized over start (rows of :func:`figure_errors`) with the combined error
     (:data:`COMBINED_ERROR_RULE`); ``gain_exceeds_error``: |ratio - 1| is larger than
@@ -1495,8 +1498,13 @@ def gain_of(start: dict, optimized: dict) -> dict:
            "combined_error": COMBINED_ERROR_RULE, "gain_exceeds_error": None}
     if a in (None, 0) or b is None:
         return out
-    out["ratio"] = r = b / a
     ra, rb = start["relative_error"], optimized["relative_error"]
+    if ra is not None and ra >= UNRESOLVED_START:
+        # e.g. a uniform grey start, which couples ~1e-15 +/- 60 %: no ratio to speak of
+        out["note"] = (f"the start's figure is not resolved (relative error {ra:.0%}); "
+                       "no ratio against it")
+        return out
+    out["ratio"] = r = b / a
     if ra is not None and rb is not None:
         rel = math.hypot(ra, rb)
         out.update(relative_error=rel, absolute_error=abs(r) * rel,
