@@ -21,6 +21,8 @@ The ``[optimize]`` table of the spec::
     projection_beta = [1.0, 64.0]  # projection sharpness: start, largest
     projection_beta_every = 10     # iterations between doublings of beta
     threshold_spread = 0.25        # robust thresholds 0.5 +/- this (eroded/dilated)
+    robust_formulation = true      # false: the nominal design alone is optimized
+    length_margin = 1.0            # the filter is sized for this x the length rule
 
 Free-form density (``variables`` includes ``"density"``, alone or with continuous
 parameters): the raw density ``rho`` of the region cells (one value per FDFD cell,
@@ -31,6 +33,10 @@ eroded/nominal/dilated triple whose worst case is the objective (designer.freefo
 B. Bourdin, IJNME 50, 2143, 2001; F. Wang, B. S. Lazarov & O. Sigmund, Struct.
 Multidisc. Optim. 43, 767, 2011).  The filter radius is
 ``freeform.filter_radius_for_length(max(min_feature, min_gap), threshold_spread)``.
+``robust_formulation = false`` optimizes the nominal design alone (one solve per
+iteration instead of three, and no penalty for a sensitivity to ±edge shifts; the
+length rule then rests on the filter and on the final snap to the rules, which may
+cost some of the gain: compare the reported figures of the binarized result).
 The result is the best rule-clean of the run's end candidates binarized (the final
 iterate; with Adam also the last accepted one; nominal design at beta = inf); its figures
 are what the run reports, ``design.toml`` stores it as ``density.npy`` beside it, and
@@ -301,7 +307,8 @@ def automatic_bounds(spec: Spec, variables: dict, bounds: dict, automatic: set
 
 
 def _parse_projection(r: TableReader, density: bool) -> dict:
-    keys = ("projection_beta", "projection_beta_every", "threshold_spread")
+    keys = ("projection_beta", "projection_beta_every", "threshold_spread",
+            "robust_formulation", "length_margin")
     if not density:
         for key in keys:
             if r.has(key):
@@ -313,8 +320,10 @@ def _parse_projection(r: TableReader, density: bool) -> dict:
     every = r.number("projection_beta_every", 10, integer=True, minimum=1)
     spread = r.number("threshold_spread", 0.25, minimum=0.0, maximum=0.5,
                       exclusive_minimum=True, exclusive_maximum=True)
+    robust = r.boolean("robust_formulation", True)
+    margin = r.number("length_margin", 1.0, minimum=1.0, maximum=4.0)
     return {"beta0": beta0, "beta_max": beta_max, "every": every, "factor": 2.0,
-            "delta_eta": spread}
+            "delta_eta": spread, "robust": robust, "length_margin": margin}
 
 
 def _parse_robust(r: TableReader, spec: Spec) -> tuple[dict, str]:
@@ -676,7 +685,10 @@ def _density_chain(spec: Spec, config: DesignConfig, models) -> tuple:
     radius = delta = None
     if length > 0:
         delta = config.projection["delta_eta"]
-        radius = ff.filter_radius_for_length(length, delta)
+        radius = ff.filter_radius_for_length(config.projection.get("length_margin", 1.0)
+                                             * length, delta)
+        if not config.projection.get("robust", True):
+            delta = None     # the nominal design only: the final snap enforces the rules
     g = layout.grid
     chain = obj.DensityChain(param.raw_shape, g.dx, g.dz, cells.periodic_x, radius, delta,
                              param=param)
@@ -733,11 +745,39 @@ def _after_record(problem, st, k, extras, bar, checkpoint, on_iteration):
         on_iteration(st)
 
 
+def _scale_pattern(problem: DesignProblem) -> np.ndarray:
+    """The pattern whose figure sets a density run's loss scale: the start pattern, or,
+    when that is uniform (a grey start has no pattern and couples ~0), the family's own
+    pattern in the region."""
+    from designer import freeform as ff
+
+    pattern = problem.start_pattern()
+    if np.ptp(pattern) > 0:
+        return pattern
+    fr = problem.spec.sample.freeform
+    own = dataclasses.replace(fr, density_value=None, density=None, density_file=None,
+                              pixel_m=None, origin_m=None)
+    sample = dataclasses.replace(problem.spec.sample, freeform=own)
+    rho = get_family(problem.spec.family).freeform_start(sample, problem.models[0].layout)
+    return np.asarray(ff.threshold_projection(np.asarray(rho, dtype=float), math.inf))
+
+
 def _evaluate_with_grad(problem, u, multipliers, k, objective_only=False):
     aux = problem.aux(u, multipliers, k)
     fn = problem.objective_grad if objective_only else problem.value_grad
     (loss, extras), grad = fn(np.asarray(u, dtype=float), aux)
-    return float(loss), np.asarray(grad, dtype=float), extras, aux
+    loss, grad = float(loss), np.asarray(grad, dtype=float)
+    if not (math.isfinite(loss) and np.all(np.isfinite(grad))):
+        from designer.errors import NumericalError
+
+        what = "objective" if not math.isfinite(loss) else "gradient"
+        raise NumericalError(
+            f"{problem.spec.source}: [optimize] objective = "
+            f"{problem.config.objective!r}: the {what} is not finite at iteration {k} "
+            "(e.g. a damage factor whose binarized pattern holds no material, as a "
+            "uniform grey start does); start from a pattern with material in it, or "
+            "optimize another figure first")
+    return loss, grad, extras, aux
 
 
 def _run_lbfgsb(problem, st, *, checkpoint, bar=None, on_iteration=None) -> None:
@@ -1273,7 +1313,7 @@ def run_design(spec: Spec, out_dir: str | Path, config: DesignConfig, *, resume:
         # the start design's aggregated figure sets the loss scale (loss -1 at the start)
         if problem.chain is not None:
             value = pattern_record(dataclasses.replace(problem, scale=1.0), u0,
-                                   problem.start_pattern())["objective"]
+                                   _scale_pattern(problem))["objective"]
         else:
             _, extras = problem.evaluate(u0, (problem.masks(u0), np.zeros(n_con), 1.0))
             value = float(extras[0])
@@ -1446,6 +1486,9 @@ def figure_errors(refined: dict, coarse: dict) -> dict:
     return rows
 
 
+UNRESOLVED_START = 0.5   # a start known to no better than this has no meaningful ratio
+
+
 def gain_of(start: dict, optimized: dict) -> dict:
     """Optimized over start (rows of :func:`figure_errors`) with the combined error
     (:data:`COMBINED_ERROR_RULE`); ``gain_exceeds_error``: |ratio - 1| is larger than
@@ -1455,8 +1498,13 @@ def gain_of(start: dict, optimized: dict) -> dict:
            "combined_error": COMBINED_ERROR_RULE, "gain_exceeds_error": None}
     if a in (None, 0) or b is None:
         return out
-    out["ratio"] = r = b / a
     ra, rb = start["relative_error"], optimized["relative_error"]
+    if ra is not None and ra >= UNRESOLVED_START:
+        # e.g. a uniform grey start, which couples ~1e-15 +/- 60 %: no ratio to speak of
+        out["note"] = (f"the start's figure is not resolved (relative error {ra:.0%}); "
+                       "no ratio against it")
+        return out
+    out["ratio"] = r = b / a
     if ra is not None and rb is not None:
         rel = math.hypot(ra, rb)
         out.update(relative_error=rel, absolute_error=abs(r) * rel,
@@ -1661,8 +1709,9 @@ def freeform_summary(result: DesignResult) -> dict:
     return {"pixels": list(c.shape), "pixel_m": [c.dx, c.dz], "periodic_x": c.periodic_x,
             "filter_radius_m": c.radius_m, "threshold_spread": c.delta_eta,
             "length_rule_m": length_rule(p.spec),
+            "robust_formulation": c.delta_eta is not None,
             "robust_length_m": (ff.robust_length_scale(c.radius_m, c.delta_eta)
-                                if c.radius_m else None),
+                                if c.radius_m and c.delta_eta else None),
             "final_beta": last_beta, "binarized_at": "beta = inf (nominal threshold 0.5)",
             "grayness_at_final_beta": float(ff.grayness(ff.threshold_projection(c.filtered(rho),
                                                                    last_beta))),

@@ -299,7 +299,8 @@ def default_grid_step(spec: Spec, values: dict | None = None) -> float:
     """Default FDFD grid step (m): the smallest of
 
     * the wavelength rule: DEFAULT_CELLS_PER_WAVELENGTH cells per wavelength in the
-      densest material (solvers.fdfd.spacing_for);
+      densest material (solvers.fdfd.spacing_for), a free-form region counted as its
+      solid material whatever its density;
     * for paths along x, the evanescent decay length of the synchronous harmonic,
       ``beta gamma lambda / 2 pi`` (e.g. R. J. England et al., Rev. Mod. Phys. 86, 1337,
       2014), over CELLS_PER_DECAY_LENGTH, and the electron's distance to the nearest
@@ -319,6 +320,11 @@ def default_grid_step(spec: Spec, values: dict | None = None) -> float:
     eps_x, eps_z = family.permittivity(spec.sample, probe, values)
     eps_max = max(float(np.max(np.abs(np.asarray(eps_x)))),
                   float(np.max(np.abs(np.asarray(eps_z)))))
+    region = getattr(spec.sample, "freeform", None)
+    if region is not None:
+        # a free-form region can put its solid anywhere: a grey start must not coarsen
+        # the grid the optimized (solid) pattern is solved on
+        eps_max = max(eps_max, abs(complex(region.material.eps)))
     wave = spacing_for(spec.laser.wavelength_m, eps_max)
     h = wave
     if probe.path.direction == "x":

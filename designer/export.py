@@ -54,6 +54,7 @@
 from __future__ import annotations
 
 import datetime as _dt
+import math
 import os
 import sys
 from dataclasses import dataclass
@@ -345,6 +346,38 @@ def freeform_top_view(spec, settings: LayoutSettings) -> geo.TopView:
         raise SpecError(spec.source, "layout.field_um", str(exc)) from None
 
 
+def _period_pieces(polys_nm, period_m: float, x_cut_m: float, z_lo_m: float,
+                   z_hi_m: float) -> list[np.ndarray]:
+    """The parts of one period window ``[x_cut, x_cut + P)`` of a band, in metres.
+
+    The periodic pattern (five periods of ``polys_nm`` joined) is split into connected
+    parts; a part narrower than a period is kept whole by the period that holds the
+    centre of its bounding box (each part of the infinite pattern belongs to exactly
+    one period, so the repeated windows rebuild it, and the two ends of the row hold
+    whole parts, never a sliver cut off at the window's edge, even where a part is
+    wider than a period); a part joined to its own copies (a continuous rail, spanning
+    all five periods) is cut to the window."""
+    import gdstk
+
+    P = period_m * 1e9
+    x0, z0, z1 = x_cut_m * 1e9, z_lo_m * 1e9, z_hi_m * 1e9
+    ks = range(math.floor(x0 / P) - 3, math.ceil(x0 / P) + 4)    # copies cover the band
+    moved = [q + np.array([k * P, 0.0]) for k in ks for q in polys_nm]
+    band = geo.rectangle(x0 - 2 * P, z0, x0 + 3 * P, z1)
+    parts = gdstk.boolean(moved, [band], "and", precision=1e-4)
+    window = geo.rectangle(x0, z0, x0 + P, z1)
+    out = []
+    for part in parts:
+        pts = np.asarray(part.points)
+        lo, hi = pts[:, 0].min(), pts[:, 0].max()
+        if hi - lo >= 4.5 * P:         # joined to its own copies: a rail
+            out += [np.asarray(x.points) * 1e-9 for x in
+                    gdstk.boolean([pts], [window], "and", precision=1e-4)]
+        elif math.floor((0.5 * (lo + hi) - x0) / P + 1e-9) == 0:   # ties: one copy
+            out.append(pts * 1e-9)
+    return out
+
+
 def _row_bands(mask: np.ndarray) -> list[tuple[int, int, np.ndarray]]:
     """Bands ``[k_lo, k_hi)`` of consecutive rows holding material (not every row of a
     band is a full slab), with the columns that hold material anywhere in the band;
@@ -386,12 +419,11 @@ def wafer_top_view(spec, settings: LayoutSettings) -> geo.TopView:
     there), and repeated ``round(length / period)`` times along x, centred on x = 0.
     Each row band (consecutive grid rows holding material, e.g. each of two facing
     rows) gets its own period window, started in its widest column without material,
-    so no pillar is cut at the ends (``row_bands`` in the summary: where each band's
-    simulated x = 0 lands).  The frame is the simulated domain: with tone
-    ``remove`` everything simulated as vacuum is etched.
+    and keeps whole parts (:func:`_period_pieces`), so no pillar is cut at the ends
+    (``row_bands`` in the summary: where each band's simulated x = 0 lands).  The frame
+    is the simulated domain: with tone ``remove`` everything simulated as vacuum is
+    etched.
     """
-    import gdstk
-
     from designer.evaluate import default_grid_step
     from designer.families import get_family
 
@@ -417,12 +449,7 @@ def wafer_top_view(spec, settings: LayoutSettings) -> geo.TopView:
         x_cut = g.x0 + cut
         zb_lo = z_lo + k_lo * g.dz if k_lo > 0 else z_lo
         zb_hi = z_lo + k_hi * g.dz if k_hi < mask.shape[1] else z_hi
-        window = geo.rectangle(x_cut, zb_lo, x_cut + P, zb_hi) * 1e9
-        pieces = []
-        for shift in (-P, 0.0, P):
-            moved = [q + np.array([shift * 1e9, 0.0]) for q in polys]
-            pieces += [np.asarray(x.points) * 1e-9 for x in
-                       gdstk.boolean(moved, [window], "and", precision=1e-4)]
+        pieces = _period_pieces(polys, P, x_cut, zb_lo, zb_hi)
         keep += [q + np.array([x_first - x_cut + k * P, 0.0]) for k in range(n) for q in pieces]
         if not cols.all():                  # full slabs: their window does not matter
             origins.append(((x_first - x_cut, 0.0), (zb_lo, zb_hi)))

@@ -360,9 +360,19 @@ class Violation:
         if self.rule == "aspect_ratio":
             return (f"{self.rule}: {self.description} {where} is {self.measured_m * 1e9:.1f} nm "
                     f"high; the rule allows at most {self.limit_m * 1e9:.1f} nm")
-        relation = "above the maximum" if self.measured_m > self.limit_m else "below the minimum"
-        return (f"{self.rule}: {self.description} {where} measures "
-                f"{self.measured_m * 1e9:.1f} nm, {relation} {self.limit_m * 1e9:.1f} nm")
+        return (f"{self.rule}: {self.description} {where} "
+                f"{size_phrase(self.rule, self.measured_m, self.limit_m)}")
+
+
+def size_phrase(rule: str, measured_m: float, limit_m: float) -> str:
+    """``measures 38.5 nm, below the minimum 80.0 nm`` (or ``above the maximum``).  A
+    minimum rule whose region was found by opening/closing but whose local width
+    estimate is not below the limit (a part that is thin only somewhere) says so."""
+    m, lim = measured_m * 1e9, limit_m * 1e9
+    if rule.startswith("min_") and measured_m >= limit_m:
+        return f"is narrower than {lim:.1f} nm in places (local width estimate {m:.1f} nm)"
+    relation = "above the maximum" if measured_m > limit_m else "below the minimum"
+    return f"measures {m:.1f} nm, {relation} {lim:.1f} nm"
 
 
 def _below(measured: float, limit: float) -> bool:
@@ -609,9 +619,8 @@ class Finding:
             return f"{self.plane}: " + Violation(self.rule, self.measured_m, self.limit_m,
                                                  self.location_m, self.description).message
         where = f"at x = {x * 1e6:.4f} µm, y = {v * 1e6:.4f} µm"
-        relation = "above the maximum" if self.measured_m > self.limit_m else "below the minimum"
-        return (f"layout: {self.rule}: {self.description} {where} measures "
-                f"{self.measured_m * 1e9:.1f} nm, {relation} {self.limit_m * 1e9:.1f} nm")
+        return (f"layout: {self.rule}: {self.description} {where} "
+                f"{size_phrase(self.rule, self.measured_m, self.limit_m)}")
 
     def to_dict(self) -> dict:
         # a finding without a size (etch, region, material) stores null, not NaN: the

@@ -250,10 +250,25 @@ def _harmonic_weights(kz, z, z1, z2, xp):
     kz = xp.asarray(kz, dtype=complex)
     small = xp.abs(kz * (z2 - z1)) < 1e-6
     ks = xp.where(small, 1.0, kz)
-    den = xp.sin(ks * (z2 - z1))
-    w1 = xp.where(small, (z2 - z) / (z2 - z1), xp.sin(ks * (z2 - z)) / den)
-    w2 = xp.where(small, (z - z1) / (z2 - z1), xp.sin(ks * (z - z1)) / den)
+    w1 = xp.where(small, (z2 - z) / (z2 - z1), _sin_ratio(ks * (z2 - z), ks * (z2 - z1), xp))
+    w2 = xp.where(small, (z - z1) / (z2 - z1), _sin_ratio(ks * (z - z1), ks * (z2 - z1), xp))
     return w1, w2
+
+
+# weights above this only amplify rounding: an evanescent harmonic extrapolated far
+# outside the two rows that fix it (a height outside the vacuum run)
+_LARGEST_WEIGHT = 1e12
+
+
+def _sin_ratio(a, d, xp):
+    """``sin(a) / sin(d)`` for complex arguments without overflow: both sines are scaled
+    by ``e^{-t}``, ``t = max(|Im a|, |Im d|)``; a ratio beyond ``_LARGEST_WEIGHT`` (or a
+    vanishing scaled denominator) gives 0 -- that harmonic is dropped."""
+    t = xp.maximum(xp.abs(xp.imag(a)), xp.abs(xp.imag(d)))
+    num = xp.exp(1j * a - t) - xp.exp(-1j * a - t)
+    den = xp.exp(1j * d - t) - xp.exp(-1j * d - t)
+    ok = xp.abs(den) * _LARGEST_WEIGHT > xp.abs(num)
+    return xp.where(ok, num / xp.where(ok, den, 1.0), 0.0)
 
 
 def gap_row(ex, *, dx, dz, x0, z0, z, omega, bloch_kx, rows, xp=None):

@@ -13,6 +13,7 @@ Spec values below are scenarios of our own.
 """
 
 import json
+import math
 
 import jax
 import jax.numpy as jnp
@@ -511,3 +512,18 @@ def test_a_run_that_cannot_move_warns_that_its_gain_is_inside_the_error(tmp_path
     assert comp["figures"]["beta_c_per_field_m_per_V"]["refined"]["start"]["value"] == \
         start["coupling"]["beta_c_per_field_m_per_V"]
     assert warning in (out / "report.html").read_text()
+
+
+def test_no_ratio_against_an_unresolved_start():
+    """A start whose figure is known to no better than 50 % (a uniform grey density
+    couples ~1e-15 +/- 60 %) gives no ratio; a resolved one gives the ratio with the
+    root-sum-square error (J. R. Taylor, An Introduction to Error Analysis, 1997, 3.6)."""
+    from designer.design import gain_of
+
+    grey = {"value": 3.9e-14, "relative_error": 0.63}
+    opt_row = {"value": 0.64, "relative_error": 0.13}
+    g = gain_of(grey, opt_row)
+    assert g["ratio"] is None and "not resolved" in g["note"]
+    g = gain_of({"value": 0.32, "relative_error": 0.03}, opt_row)
+    assert g["ratio"] == pytest.approx(2.0)
+    assert g["absolute_error"] == pytest.approx(2.0 * math.hypot(0.03, 0.13))

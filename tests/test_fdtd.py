@@ -127,6 +127,14 @@ def test_problem_rejects_inconsistent_input():
     with pytest.raises(ValueError, match="within one period"):
         tooth = np.array([[0, 0], [0.1, 0], [0.1, 0.1], [0, 0.1]]) * UM + [2 * UM, 0]
         FdtdProblem(**base, period_x_m=0.4 * UM, polygons=(FdtdPolygon(tooth, 2.0),))
+    # a traced polygon ending at the edge of the allowed range in single precision
+    # (relative rounding 6e-8) is still inside (common practice, no source)
+    edge = np.float32(2 * 0.4 * UM)
+    sliver = np.array([[edge - 0.02 * UM, 0], [edge, 0], [edge, 0.1 * UM],
+                       [edge - 0.02 * UM, 0.1 * UM]])
+    assert float(edge) > 2 * 0.4 * UM + 1e-9 * 0.4 * UM
+    FdtdProblem(**base, period_x_m=0.4 * UM, x_min_m=0.0,
+                polygons=(FdtdPolygon(sliver, 2.0),))
     with pytest.raises(ValueError, match="Re\\(eps\\) > 0"):
         FdtdPolygon(np.zeros((3, 2)) + [[0, 0], [1, 0], [0, 1]], -10 + 1j)
     # a Bloch vector one reciprocal-lattice vector away is the same problem

@@ -325,3 +325,44 @@ def test_slit_lattice_against_fdfd():
     assert np.all(np.abs(got[2:] / fd[2, 2:] - 1) < 1e-2)
     # the slit's coupling is not a film's: the comparison has something to resolve
     assert abs(got[3] / got[2] - 1) > 0.3
+
+
+def test_patterned_modes_satisfy_the_curl_equations():
+    # The modes' V and Z are built without the product Q W (via P V = W diag(q) and the
+    # Woodbury identity).  Checked against the defining relations (common linear
+    # algebra, no source): P Q W = W diag(q^2), V = Q W / q, E_z = -[eps]^{-1}
+    # (Kx h_y - Ky h_x); and for a homogeneous layer the admittance V W^-1 and E_z map
+    # Z W^-1 equal the closed-form ones of uniform_modes.
+    from solvers.fmm import modes as md
+    lat = fmm.square_lattice(500e-9)
+    orders = (2, 2)
+    mm, nn = fmm.harmonic_indices(orders)
+    b1, b2 = lat.reciprocal()
+    k0 = 2 * np.pi / LAM
+    kx = 0.3 + 0.1j + (mm * b1[0] + nn * b2[0]) / k0
+    ky = -0.2 + (mm * b1[1] + nn * b2[1]) / k0
+    m = kx.shape[0]
+    for shape, eps_hole in ((ELLIPSE, 1.0), (fmm.Circle((0.0, 0.0), 100e-9), 4.0 + 0.3j)):
+        lay = fmm.PatternedLayer(100e-9, 4.0 + 0.3j, (shape,), (eps_hole,))
+        mats = md.patterned_matrices(lay, lat, orders, "normal", 32)
+        q, w, v, z = (np.asarray(x) for x in md.patterned_modes(mats, kx, ky))
+        eps_c, exx, exy, eyx, eyy = (np.asarray(x) for x in mats)
+        a = np.linalg.inv(eps_c)
+        dkx, dky, one = np.diag(kx), np.diag(ky), np.eye(m)
+        p = np.block([[dkx @ a @ dky, one - dkx @ a @ dkx], [dky @ a @ dky - one, -dky @ a @ dkx]])
+        qm = np.block([[-dkx @ dky - eyx, dkx @ dkx - eyy], [exx - dky @ dky, dky @ dkx + exy]])
+        scale = np.max(np.abs(p @ qm))
+        assert np.max(np.abs(p @ qm @ w - w * q**2)) < 1e-9 * scale
+        ref_v = (qm @ w) / q
+        assert np.max(np.abs(v - ref_v)) < 1e-9 * np.max(np.abs(ref_v))
+        ref_z = -a @ (dkx @ v[m:] - dky @ v[:m])
+        assert np.max(np.abs(z - ref_z)) < 1e-9 * np.max(np.abs(ref_z))
+    uniform = fmm.PatternedLayer(100e-9, 2.5 + 0.1j, (ELLIPSE,), (2.5 + 0.1j,))
+    q, w, v, z = md.patterned_modes(md.patterned_matrices(uniform, lat, orders, "normal", 32),
+                                    kx, ky)
+    qu, _, vu, zu = md.uniform_modes(2.5 + 0.1j, kx, ky)
+    winv = np.linalg.inv(np.asarray(w))
+    assert np.allclose(np.sort_complex(np.asarray(q)), np.sort_complex(np.asarray(qu)),
+                       rtol=1e-10)
+    assert np.max(np.abs(np.asarray(v) @ winv - np.asarray(vu))) < 1e-9 * np.max(np.abs(vu))
+    assert np.max(np.abs(np.asarray(z) @ winv - np.asarray(zu))) < 1e-9 * np.max(np.abs(zu))

@@ -334,3 +334,47 @@ def test_export_flags_a_thin_freeform_line(tmp_path, capsys):
     err = capsys.readouterr().err
     assert "cross-section: min_feature" in err and "layout: min_feature" in err
     assert not (tmp_path / "x.gds").exists()
+
+
+def test_nominal_only_formulation_solves_one_design(tmp_path):
+    """``robust_formulation = false``: the chain projects the nominal design alone (one
+    design per scenario instead of the eroded/nominal/dilated three), with the same
+    filter radius; the default keeps the three (F. Wang, B. S. Lazarov & O. Sigmund,
+    Struct. Multidisc. Optim. 43, 767, 2011)."""
+    robust = d.build_problem(s := load_spec(write(tmp_path)), d.parse_optimize(s))
+    p = write(tmp_path, name="nominal.toml")
+    p.write_text(p.read_text().replace("projection_beta_every = 4",
+                                       "projection_beta_every = 4\nrobust_formulation = false"))
+    spec = load_spec(p)
+    nominal = d.build_problem(spec, d.parse_optimize(spec))
+    assert nominal.chain.delta_eta is None and robust.chain.delta_eta == 0.25
+    assert nominal.chain.radius_m == pytest.approx(robust.chain.radius_m, rel=1e-12)
+    rho = np.full(nominal.chain.shape, 0.3)
+    rho[: rho.shape[0] // 2] = 0.8
+    assert robust.chain.designs(rho, 8.0).shape[0] == 3
+    one = nominal.chain.designs(rho, 8.0)
+    assert one.shape[0] == 1
+    np.testing.assert_allclose(one[0], robust.chain.designs(rho, 8.0)[1], rtol=1e-12)
+
+
+def test_damage_factor_from_a_uniform_grey_start_fails_cleanly(tmp_path, capsys):
+    """Two rows with no substrate and a uniform grey start: the start binarizes to no
+    material, so |E|max in material is 0 and G/E_max is not finite.  The command stops
+    with one message naming the spec and the objective, a non-zero exit and no
+    traceback (common practice, no source)."""
+    from pathlib import Path
+
+    from designer.cli import main
+
+    text = (Path(__file__).parents[1] / "studies/onchip_accelerator/freeform_rows.toml"
+            ).read_text()
+    text = (text.replace('upper = "mirrored"', 'upper = "mirrored"\ndensity = 0.5')
+                .replace("grid_step_nm = 25.0", "grid_step_nm = 50.0")
+                .replace('objective = "structure_factor"', 'objective = "damage_factor"')
+                .replace("iterations = 12", "iterations = 2"))
+    p = tmp_path / "grey_rows.toml"
+    p.write_text(text)
+    code = main(["design", str(p), "--out", str(tmp_path / "out")])
+    err = capsys.readouterr().err
+    assert code != 0
+    assert "Traceback" not in err and "damage_factor" in err and str(p) in err

@@ -110,3 +110,19 @@ def test_default_grid_resolves_decay_length_and_surface_distance():
     assert h >= wave_rule / 4 * (1 - 1e-9)       # never finer than a quarter of the rule
     far = parse_spec({**GRATING, "path": {"offset_nm": 200.0, "length_um": 10.0}})
     assert default_grid_step(far) == pytest.approx(min(wave_rule, delta / 6))
+
+
+def test_harmonic_weights_stay_finite_far_outside_the_rows():
+    """The two-row weights equal sin(kz (z2 - z)) / sin(kz dz) (closed form, common
+    practice, no source) where that is representable, and stay finite for a strongly
+    evanescent harmonic extrapolated far from the rows (where the plain quotient is
+    inf / inf)."""
+    from solvers.coupling import _harmonic_weights
+
+    kz = np.array([0.3, 2.0j, 1.0 + 2.0j, 40.0j])
+    w1, w2 = _harmonic_weights(kz, 0.25, 0.0, 1.0, np)
+    np.testing.assert_allclose(w1, np.sin(kz * 0.75) / np.sin(kz), rtol=1e-12)
+    np.testing.assert_allclose(w2, np.sin(kz * 0.25) / np.sin(kz), rtol=1e-12)
+    w1, w2 = _harmonic_weights(np.array([3000.0j, 5.0j]), 4.0, 0.0, 1.0, np)
+    assert np.all(np.isfinite(w1)) and np.all(np.isfinite(w2))
+    np.testing.assert_allclose(w2[1], np.sin(5.0j * 4.0) / np.sin(5.0j), rtol=1e-12)

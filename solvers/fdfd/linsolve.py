@@ -23,13 +23,25 @@ on a shared 2-core machine this was measured 5-15x slower (CPU and wall time) th
 one thread (40k cells: 0.45 s CPU with one thread, 4.7-5.8 s with the default).
 So the SuperLU backends run with the OpenBLAS libraries that SciPy and NumPy
 loaded limited to one thread (restored afterwards); ``BLAS_THREADS`` changes that.
+
+Every SuperLU factorization is made, used and freed on one persistent worker thread
+(:class:`SuperLUThread`).  SciPy's SuperLU wrapper records each block it allocates in
+a table of the calling Python thread state and frees a block only if the thread state
+that frees it finds it in its own table (scipy/sparse/linalg/_dsolve/_superlu_utils.c,
+SciPy 1.17); JAX runs each host callback of ``field_solver`` under a fresh thread
+state, so a factorization made in one callback and dropped from the solver's cache in
+a later one kept its L and U for good -- measured 85 MB per factorization on a
+104 x 731 grid, 6 GB after about 70 evaluations of a parametric design.
 """
 
 from __future__ import annotations
 
 import contextlib
 import ctypes
-from dataclasses import dataclass
+import itertools
+import os
+import threading
+from concurrent.futures import ThreadPoolExecutor
 from typing import Callable, Protocol
 
 import numpy as np
@@ -92,33 +104,109 @@ class Factorization(Protocol):
     def solve(self, b: np.ndarray, trans: bool = False) -> np.ndarray: ...
 
 
-@dataclass
+class SuperLUThread:
+    """The one thread that creates, uses and frees SuperLU factorizations (see the
+    module docstring for why).  The factorizations live in a table only this thread
+    touches; callers hold a handle.  ``call`` runs a function there and waits for it;
+    ``release`` drops a handle's factorization there without waiting."""
+
+    def __init__(self):
+        self._lock = threading.Lock()
+        self._pool: ThreadPoolExecutor | None = None
+        self._ident: int | None = None
+        self._table: dict[int, spla.SuperLU] = {}
+        self._ids = itertools.count()
+
+    def _executor(self) -> ThreadPoolExecutor:
+        with self._lock:
+            if self._pool is None:
+                self._pool = ThreadPoolExecutor(1, thread_name_prefix="velomatch-superlu",
+                                                initializer=self._mark)
+            return self._pool
+
+    def _mark(self) -> None:
+        self._ident = threading.get_ident()
+
+    def call(self, fn, *args, **kwargs):
+        if threading.get_ident() == self._ident:
+            return fn(*args, **kwargs)
+        return self._executor().submit(fn, *args, **kwargs).result()
+
+    def factor(self, A, **options) -> int:
+        """Factor ``A`` (scipy.sparse.linalg.splu keyword options); a handle."""
+        def run():
+            with blas_threads(BLAS_THREADS):
+                lu = spla.splu(sp.csc_matrix(A), **options)
+            handle = next(self._ids)
+            self._table[handle] = lu
+            return handle
+
+        return self.call(run)
+
+    def solve(self, handle: int, b, trans: str = "N") -> np.ndarray:
+        def run():
+            with blas_threads(BLAS_THREADS):
+                return self._table[handle].solve(b, trans=trans)
+
+        return self.call(run)
+
+    def nnz(self, handle: int) -> int:
+        return self.call(lambda: int(self._table[handle].L.nnz + self._table[handle].U.nnz))
+
+    def release(self, handle: int) -> None:
+        def run():
+            # nothing returned: the factorization's last reference dies on this thread
+            self._table.pop(handle, None)
+
+        try:
+            self._executor().submit(run)
+        except RuntimeError:
+            pass        # interpreter shutdown: the process frees everything anyway
+
+    def live(self) -> int:
+        """How many factorizations are held (for tests and benchmarks)."""
+        return self.call(lambda: len(self._table))
+
+    def _after_fork(self) -> None:
+        # a forked child has no worker thread; it starts its own on first use
+        self._lock = threading.Lock()
+        self._pool, self._ident, self._table = None, None, {}
+
+
+SUPERLU = SuperLUThread()
+if hasattr(os, "register_at_fork"):
+    os.register_at_fork(after_in_child=SUPERLU._after_fork)
+
+
 class _SuperLU:
-    lu: spla.SuperLU
-    name: str
+    """A SuperLU factorization held by :data:`SUPERLU` (freed there when dropped)."""
+
+    def __init__(self, A, name: str, **options):
+        self.name = name
+        self._handle = SUPERLU.factor(A, **options)
 
     def solve(self, b, trans=False):
-        with blas_threads(BLAS_THREADS):
-            return self.lu.solve(np.asarray(b, dtype=complex), trans="T" if trans else "N")
+        return SUPERLU.solve(self._handle, np.asarray(b, dtype=complex),
+                             "T" if trans else "N")
 
     @property
     def nnz(self) -> int:
-        return int(self.lu.L.nnz + self.lu.U.nnz)
+        return SUPERLU.nnz(self._handle)
+
+    def __del__(self):
+        handle = getattr(self, "_handle", None)
+        # at interpreter shutdown the module's globals may already be gone
+        if handle is not None and SUPERLU is not None:
+            SUPERLU.release(handle)
 
 
 def _superlu_mmd(A):
-    with blas_threads(BLAS_THREADS):
-        lu = spla.splu(
-            sp.csc_matrix(A),
-            permc_spec="MMD_AT_PLUS_A",
-            options=dict(SymmetricMode=True, DiagPivotThresh=0.01),
-        )
-    return _SuperLU(lu, "superlu_mmd")
+    return _SuperLU(A, "superlu_mmd", permc_spec="MMD_AT_PLUS_A",
+                    options=dict(SymmetricMode=True, DiagPivotThresh=0.01))
 
 
 def _superlu_plain(A):
-    with blas_threads(BLAS_THREADS):
-        return _SuperLU(spla.splu(sp.csc_matrix(A)), "superlu")
+    return _SuperLU(A, "superlu")
 
 
 _BACKENDS: dict[str, Callable] = {"superlu_mmd": _superlu_mmd, "superlu": _superlu_plain}

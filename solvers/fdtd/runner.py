@@ -183,7 +183,8 @@ class FdtdProblem:
             # Meep wraps objects by one period either way; anything wider must be an
             # x-invariant slab (a rectangle covering the cell and its neighbours)
             lo, hi = self.x_min_m - self.period_x_m, self.x_min_m + 2 * self.period_x_m
-            slack = 1e-9 * self.period_x_m
+            # traced polygons may carry single-precision vertices (~1e-7 relative)
+            slack = 1e-6 * self.period_x_m
             for p in self.polygons:
                 vx = p.vertices_m[:, 0]
                 if vx.min() >= lo - slack and vx.max() <= hi + slack:

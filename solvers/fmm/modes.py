@@ -111,37 +111,58 @@ def uniform_modes(eps, kx, ky):
 
 
 def patterned_matrices(layer: PatternedLayer, lattice, orders, factorization, samples):
-    """``(A, E_xx, E_xy, E_yx, E_yy)`` of a patterned layer (module docstring)."""
+    """``([eps], E_xx, E_xy, E_yx, E_yy)`` of a patterned layer (module docstring).
+
+    The inverse rule's ``A = [eps]^{-1}`` is never formed: :func:`patterned_modes` only
+    needs products with it, which it takes as linear solves with ``[eps]``."""
     eps_c = convolution_matrix(permittivity_coefficients(layer, lattice), lattice, orders)
-    a = jnp.linalg.inv(eps_c)
     if factorization == "laurent":
         zero = jnp.zeros_like(eps_c)
-        return a, eps_c, zero, zero, eps_c
+        return eps_c, eps_c, zero, zero, eps_c
     inv_c = convolution_matrix(permittivity_coefficients(layer, lattice, inverse=True),
                                lattice, orders)
-    delta = eps_c - jnp.linalg.inv(inv_c)
-    nxx, nxy, nyy = normal_field_matrices(layer, lattice, orders, samples)
+    inverse_rule = jnp.linalg.inv(inv_c)
+    delta = eps_c - inverse_rule
+    nxx, nxy, _ = normal_field_matrices(layer, lattice, orders, samples)
 
     def sym(n):
         return 0.5 * (delta @ n + n @ delta)
 
+    # n is a unit field, so [n_y n_y] = 1 - [n_x n_x] exactly (the Fourier series of 1
+    # is the identity) and sym([n_y n_y]) = Delta - sym([n_x n_x])
+    sxx = sym(nxx)
     cross = -sym(nxy)
-    return (a, eps_c - sym(nxx), cross, cross, eps_c - sym(nyy))
+    return (eps_c, eps_c - sxx, cross, cross, inverse_rule + sxx)
 
 
 def patterned_modes(mats, kx, ky):
-    """Modes ``(q, W, V, Z)`` of a patterned layer from its permittivity matrices."""
-    a, exx, exy, eyx, eyy = mats
+    """Modes ``(q, W, V, Z)`` of a patterned layer from its permittivity matrices.
+
+    ``P = J + K_c A K_r`` with ``J = [[0, 1], [-1, 0]]``, ``K_c = [Kx; Ky]`` and
+    ``K_r = [Ky, -Kx]``: the operator of the eigenproblem is assembled as
+    ``P Q = J Q + K_c [eps]^{-1} (K_r Q)``, one solve of the harmonics' size instead of a
+    product of twice that size.  ``V = Q W q^{-1}`` follows without a product with Q:
+    ``P V = W diag(q)`` (the mode's ``de/dz = i q e = i P h``), and the Woodbury identity
+    with ``[eps]^{-1}``'s inverse ``[eps]`` gives
+
+        P^{-1} = -J - J K_c S^{-1} K_r J,    S = [eps] - Kx^2 - Ky^2,
+
+    so with ``Y = W diag(q)`` and ``g = K_r J Y = Kx Y_x + Ky Y_y``,
+    ``V = [-Y_y - Ky S^{-1} g;  Y_x + Kx S^{-1} g]`` and ``Z = A K_r V = -S^{-1} g``
+    (E_z of the mode; ``K_r V = -[eps] S^{-1} g``).  Common linear algebra, no source;
+    for a homogeneous medium it reproduces :func:`uniform_modes` (tested)."""
+    eps_c, exx, exy, eyx, eyy = mats
     m = kx.shape[0]
-    one = jnp.eye(m, dtype=complex)
-    kxd, kyd = jnp.diag(kx + 0j), jnp.diag(ky + 0j)
-    p = jnp.block([[kxd @ a @ kyd, one - kxd @ a @ kxd],
-                   [kyd @ a @ kyd - one, -kyd @ a @ kxd]])
-    qm = jnp.block([[-kxd @ kyd - eyx, kxd @ kxd - eyy],
-                    [exx - kyd @ kyd, kyd @ kxd + exy]])
-    lam, w = eig(p @ qm)
+    kx, ky = kx + 0j, ky + 0j
+    qm = jnp.block([[-jnp.diag(kx * ky) - eyx, jnp.diag(kx * kx) - eyy],
+                    [exx - jnp.diag(ky * ky), jnp.diag(ky * kx) + exy]])
+    # Kx, Ky are diagonal: row scalings instead of matrix products
+    t = jnp.linalg.solve(eps_c, ky[:, None] * qm[:m] - kx[:, None] * qm[m:])
+    op = jnp.concatenate([kx[:, None] * t + qm[m:], ky[:, None] * t - qm[:m]], axis=0)
+    lam, w = eig(op)
     q = branch(lam)
-    v = (qm @ w) / q[None, :]
-    vx, vy = v[:m], v[m:]
-    z = -a @ (kx[:, None] * vy - ky[:, None] * vx)
-    return q, w, v, z
+    y = w * q[None, :]
+    s = eps_c - jnp.diag(kx * kx + ky * ky)
+    h = jnp.linalg.solve(s, kx[:, None] * y[:m] + ky[:, None] * y[m:])
+    v = jnp.concatenate([-y[m:] - ky[:, None] * h, y[:m] + kx[:, None] * h], axis=0)
+    return q, w, v, -h

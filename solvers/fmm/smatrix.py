@@ -48,19 +48,19 @@ def interface(w_a, v_a, w_b, v_b, a_identity=False, b_identity=False):
     one = jnp.eye(n, dtype=w_a.dtype)
     if b_identity and not a_identity:
         y = w_a
-        vy = _uniform_v_times(v_b, y)
+        vy = uniform_v_times(v_b, y)
         g = jnp.linalg.solve(v_a + vy, jnp.concatenate([v_a - vy, 2.0 * v_b], axis=1))
         r_bot, t_dn = g[:, :n], g[:, n:]
         return SMatrix(t_up=y @ (one + r_bot), r_bot=r_bot, r_top=y @ t_dn - one,
                        t_dn=t_dn)
     x = w_b if a_identity else jnp.linalg.solve(w_a, w_b)
-    vx = _uniform_v_times(v_a, x) if a_identity else v_a @ x
+    vx = uniform_v_times(v_a, x) if a_identity else v_a @ x
     g = jnp.linalg.solve(vx + v_b, jnp.concatenate([2.0 * v_a, v_b - vx], axis=1))
     t_up, r_top = g[:, :n], g[:, n:]
     return SMatrix(t_up=t_up, r_bot=x @ t_up - one, r_top=r_top, t_dn=x @ (r_top + one))
 
 
-def _uniform_v_times(v, x):
+def uniform_v_times(v, x):
     """``v @ x`` for the ``v`` of a homogeneous medium, a 2 x 2 block matrix of diagonal
     blocks (:func:`solvers.fmm.modes.uniform_modes`): O(n^2) instead of a full product."""
     m = v.shape[0] // 2

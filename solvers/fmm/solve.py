@@ -158,6 +158,38 @@ def _flux(e, h, m):
     return jnp.real(e[:m] * jnp.conj(h[m:]) - e[m:] * jnp.conj(h[:m]))
 
 
+def _single_layer_amplitudes(media, x, u0, dtop):
+    """Amplitudes of one layer between the outer media as one linear system, without
+    S-matrices: ``(u, d, d0, utop)``.
+
+    Continuity of tangential E and h at z = 0 (layer amplitudes there: ``u``, ``X d``)
+    and at the top (``X u``, ``d``), with ``W = 1`` in the outer media,
+    ``W (u + X d) = u0 + d0``, ``V (u - X d) = V_b (u0 - d0)``,
+    ``W (X u + d) = utop + dtop``, ``V (X u - d) = V_a (utop - dtop)``; eliminating
+    ``d0`` and ``utop``
+
+        [[V + V_b W,  (V_b W - V) X ],  [[u],   [[ 2 V_b u0 ],
+         [(V - V_a W) X, -(V + V_a W)]]  [d]] =  [-2 V_a dtop]]
+
+    (``X = diag(exp(i k0 q d))``, only decaying exponentials, as in the S-matrix
+    algebra).  One LU of twice the modes' size with a single right-hand side replaces
+    the two interface solves with 2n right-hand sides and the matrix products of the
+    star product; its reverse-mode derivative is one transposed solve and an outer
+    product (instead of transposed solves and products of whole S-matrices)."""
+    _, w, v, _ = media[1]
+    vb, va = media[0][2], media[-1][2]
+    vbw = sm.uniform_v_times(vb, w)
+    vaw = sm.uniform_v_times(va, w)
+    lhs = jnp.concatenate([
+        jnp.concatenate([v + vbw, (vbw - v) * x[None, :]], axis=1),
+        jnp.concatenate([(v - vaw) * x[None, :], -(v + vaw)], axis=1)], axis=0)
+    rhs = jnp.concatenate([2.0 * (vb @ u0), -2.0 * (va @ dtop)])
+    ud = jnp.linalg.solve(lhs, rhs)
+    n = x.shape[0]
+    u, d = ud[:n], ud[n:]
+    return u, d, w @ (u + x * d) - u0, w @ (x * u + d) - dtop
+
+
 @partial(jax.jit, static_argnames=("orders", "factorization", "samples"))
 def _solve(lattice, layers, eps_below, eps_above, wavelength, theta, phi, psi, from_above, *,
            orders, factorization, samples):
@@ -197,24 +229,7 @@ def _solve(lattice, layers, eps_below, eps_above, wavelength, theta, phi, psi, f
         z_b.append(z_b[-1] + t)
     z_top = z_b[-1]
 
-    # S-matrices: interfaces k = 0..L between media k and k+1 (media index 0 = below);
-    # pre[j]: from the medium below up to the bottom of layer j; suf[j]: from the top
-    # of layer j to the medium above.  Only the response to the one incident wave is
-    # needed, so the global S-matrix is never formed.
-    uniform = [True] + [isinstance(lay, UniformLayer) for lay in layers] + [True]
-    ints = [sm.interface(media[k][1], media[k][2], media[k + 1][1], media[k + 1][2],
-                         a_identity=uniform[k], b_identity=uniform[k + 1])
-            for k in range(n_lay + 1)]
     xs = [jnp.exp(1j * k0 * media[j + 1][0] * thick[j]) for j in range(n_lay)]
-    pre = [ints[0]]
-    for j in range(1, n_lay):
-        pre.append(sm.star(sm.propagate_above(pre[-1], xs[j - 1]), ints[j]))
-    suf = [None] * n_lay
-    if n_lay:
-        suf[-1] = ints[-1]
-        for j in range(n_lay - 2, -1, -1):
-            suf[j] = sm.star(ints[j + 1], sm.propagate_below(xs[j + 1], suf[j + 1]))
-
     # incident wave (tangential E of the (0, 0) harmonic; W = 1 in the outer media)
     q_in = jnp.where(above_, media[-1][0][g0], media[0][0][g0])
     cos_t = q_in / n_in
@@ -226,26 +241,49 @@ def _solve(lattice, layers, eps_below, eps_above, wavelength, theta, phi, psi, f
     u0 = jnp.where(above_, zero, e_inc)
     dtop = jnp.where(above_, e_inc * jnp.exp(-1j * k0 * q_in * z_top), zero)
 
-    # amplitudes in layer j: u = Ta u0 + Ra X d,  d = Rb X u + Tb dtop  (a = pre, b = suf)
-    modes = []
-    one = jnp.eye(2 * m, dtype=complex)
-    for j in range(n_lay):
-        q, w, v, z = media[j + 1]
-        x = xs[j]
-        a, b = pre[j], suf[j]
-        ra_x = a.r_top * x[None, :]
-        rb_x = b.r_bot * x[None, :]
-        tb_d = b.t_dn @ dtop
-        u = jnp.linalg.solve(one - ra_x @ rb_x, a.t_up @ u0 + ra_x @ tb_d)
-        d = rb_x @ u + tb_d
-        modes.append(LayerModes(q=q, w=w, v=v, ez=z, up=u, down=d, z_bottom=z_b[j],
-                                thickness=thick[j]))
-    if n_lay:
-        d0 = ints[0].r_bot @ u0 + ints[0].t_dn @ (xs[0] * modes[0].down)
-        utop = ints[-1].t_up @ (xs[-1] * modes[-1].up) + ints[-1].r_top @ dtop
+    if n_lay == 1:
+        u, d, d0, utop = _single_layer_amplitudes(media, xs[0], u0, dtop)
+        q, w, v, z = media[1]
+        modes = [LayerModes(q=q, w=w, v=v, ez=z, up=u, down=d, z_bottom=z_b[0],
+                            thickness=thick[0])]
     else:
-        d0 = ints[0].r_bot @ u0 + ints[0].t_dn @ dtop
-        utop = ints[0].t_up @ u0 + ints[0].r_top @ dtop
+        # S-matrices: interfaces k = 0..L between media k and k+1 (media index 0 = below);
+        # pre[j]: from the medium below up to the bottom of layer j; suf[j]: from the top
+        # of layer j to the medium above.  Only the response to the one incident wave is
+        # needed, so the global S-matrix is never formed.
+        uniform = [True] + [isinstance(lay, UniformLayer) for lay in layers] + [True]
+        ints = [sm.interface(media[k][1], media[k][2], media[k + 1][1], media[k + 1][2],
+                             a_identity=uniform[k], b_identity=uniform[k + 1])
+                for k in range(n_lay + 1)]
+        pre = [ints[0]]
+        for j in range(1, n_lay):
+            pre.append(sm.star(sm.propagate_above(pre[-1], xs[j - 1]), ints[j]))
+        suf = [None] * n_lay
+        if n_lay:
+            suf[-1] = ints[-1]
+            for j in range(n_lay - 2, -1, -1):
+                suf[j] = sm.star(ints[j + 1], sm.propagate_below(xs[j + 1], suf[j + 1]))
+
+        # amplitudes in layer j: u = Ta u0 + Ra X d,  d = Rb X u + Tb dtop  (a = pre, b = suf)
+        modes = []
+        one = jnp.eye(2 * m, dtype=complex)
+        for j in range(n_lay):
+            q, w, v, z = media[j + 1]
+            x = xs[j]
+            a, b = pre[j], suf[j]
+            ra_x = a.r_top * x[None, :]
+            rb_x = b.r_bot * x[None, :]
+            tb_d = b.t_dn @ dtop
+            u = jnp.linalg.solve(one - ra_x @ rb_x, a.t_up @ u0 + ra_x @ tb_d)
+            d = rb_x @ u + tb_d
+            modes.append(LayerModes(q=q, w=w, v=v, ez=z, up=u, down=d, z_bottom=z_b[j],
+                                    thickness=thick[j]))
+        if n_lay:
+            d0 = ints[0].r_bot @ u0 + ints[0].t_dn @ (xs[0] * modes[0].down)
+            utop = ints[-1].t_up @ (xs[-1] * modes[-1].up) + ints[-1].r_top @ dtop
+        else:
+            d0 = ints[0].r_bot @ u0 + ints[0].t_dn @ dtop
+            utop = ints[0].t_up @ u0 + ints[0].r_top @ dtop
     qb, wb, vb, zb = media[0]
     qa, wa, va, za = media[-1]
     below = LayerModes(q=qb, w=wb, v=vb, ez=zb, up=u0, down=d0, z_bottom=jnp.asarray(0.0),
