@@ -60,11 +60,12 @@ FREEFORM = {
 }
 
 
-def freeform_raw(rect_design: Path, quick: bool) -> dict:
+def freeform_raw(rect_design: Path, quick: bool, iterations: int | None = None) -> dict:
     """The free-form spec: each row's free-form region ``region_depth_nm`` deep from the
     channel edge (the channel of the rectangular optimum), started from
     ``start_density`` (None: the rectangular optimum), the density the only variable,
-    the robust eroded/nominal/dilated formulation; same channel, beam, laser and rules."""
+    the robust eroded/nominal/dilated formulation; same channel, beam, laser and rules.
+    ``iterations`` overrides the settings' budget."""
     import tomllib
 
     st = FREEFORM[quick]
@@ -74,7 +75,7 @@ def freeform_raw(rect_design: Path, quick: bool) -> dict:
                                  "z_nm": [h - max(st["region_depth_nm"], h), h]}
     if st["start_density"] is not None:
         raw["sample"]["freeform"]["density"] = st["start_density"]
-    n = st["iterations"]
+    n = st["iterations"] if iterations is None else iterations
     raw["optimize"] = {"objective": "structure_factor", "variables": ["density"],
                        "iterations": n, "optimizer": st["optimizer"],
                        "projection_beta": st["projection_beta"],
