@@ -76,7 +76,7 @@ import numpy as np
 from designer import io as vio
 from designer import objectives as obj
 from designer import optimize as opt
-from designer.errors import SpecError, UsageError
+from designer.errors import NumericalError, SpecError, UsageError
 from designer.families import get_family
 from designer.spec import Spec, dump_spec, load_spec
 from designer.tables import TableReader
@@ -685,9 +685,9 @@ def _density_chain(spec: Spec, config: DesignConfig, models) -> tuple:
     radius = delta = None
     if length > 0:
         delta = config.projection["delta_eta"]
-        radius = ff.filter_radius_for_length(config.projection.get("length_margin", 1.0)
-                                             * length, delta)
-        if not config.projection.get("robust", True):
+        radius = ff.filter_radius_for_length(config.projection["length_margin"] * length,
+                                             delta)
+        if not config.projection["robust"]:
             delta = None     # the nominal design only: the final snap enforces the rules
     g = layout.grid
     chain = obj.DensityChain(param.raw_shape, g.dx, g.dz, cells.periodic_x, radius, delta,
@@ -768,8 +768,6 @@ def _evaluate_with_grad(problem, u, multipliers, k, objective_only=False):
     (loss, extras), grad = fn(np.asarray(u, dtype=float), aux)
     loss, grad = float(loss), np.asarray(grad, dtype=float)
     if not (math.isfinite(loss) and np.all(np.isfinite(grad))):
-        from designer.errors import NumericalError
-
         what = "objective" if not math.isfinite(loss) else "gradient"
         raise NumericalError(
             f"{problem.spec.source}: [optimize] objective = "
