@@ -1443,10 +1443,12 @@ def figure_errors(refined: dict, coarse: dict) -> dict:
     the three-grid estimate) with its error: ``value``, ``relative_error``,
     ``absolute_error`` and ``error_rule``.
 
-    |beta_c| and kappa = G/E0 carry the coupling's relative error (the length and E0 are
-    exact); E_max carries :data:`MAX_FIELD_ERROR_RULE` from ``coarse`` (the same design
-    at the design step); G/E_max their root-sum-square.  Exact layer-stack results
-    carry 0.  A figure without an estimate carries None."""
+    |beta_c| and kappa = G/E0 carry the relative error of |I| (the three-grid estimate
+    applied to the magnitude, ``magnitude_error_estimate``; the complex one where that
+    is missing; the length and E0 are exact); E_max carries
+    :data:`MAX_FIELD_ERROR_RULE` from ``coarse`` (the same design at the design step);
+    G/E_max their root-sum-square.  Exact layer-stack results carry 0.  A figure without
+    an estimate carries None."""
     c, cc = refined["coupling"], coarse["coupling"]
     solver = refined.get("provenance", {}).get("solver")
     h_f = refined.get("provenance", {}).get("grid_step_m")
@@ -1457,9 +1459,14 @@ def figure_errors(refined: dict, coarse: dict) -> dict:
         rel_i, rule_i = 0.0, "exact layer-stack solution"
         rel_e, rule_e = (0.0 if c.get(e_key) is not None else None), rule_i
     else:
-        rel_i = c.get("relative_error_estimate")
-        rule_i = "the coupling's error estimate: " + str(
-            (c.get("error_estimate") or {}).get("note") or "three grids (Richardson)")
+        if c.get("magnitude_error_estimate") is not None:
+            rel_i = c["magnitude_error_estimate"]
+            rule_i = ("the three-grid estimate of |I| (the figure depends on the magnitude "
+                      "only): " + str(c.get("magnitude_error_note") or "Richardson"))
+        else:
+            rel_i = c.get("relative_error_estimate")
+            rule_i = "the coupling's error estimate: " + str(
+                (c.get("error_estimate") or {}).get("note") or "three grids (Richardson)")
         if rel_i is None:
             key = "beta_c_per_field_m_per_V"
             rel_i = _two_grid_error(c.get(key), cc.get(key), ratio)
@@ -1737,6 +1744,27 @@ def start_spec(spec: Spec, check: dict) -> Spec:
     return parse_spec(design_raw(spec, params), source=spec.source, base_dir=spec.base_dir)
 
 
+def pixel_pitch(spec: Spec) -> float | None:
+    """The x pitch of the spec's stored pixel density, or None."""
+    fr = getattr(spec.sample, "freeform", None)
+    if fr is None or getattr(fr, "density", None) is None or fr.pixel_m is None:
+        return None
+    return float(fr.pixel_m[0])
+
+
+def refined_step(spec: Spec, step_m: float) -> float:
+    """The refined evaluation's step: ``step_m``, or for a stored pixel pattern the
+    pixel divided by the smallest integer k >= 3 with ``pixel / k <= step_m``.  Then the
+    step and the error estimate's two coarser grids (pixel/(k-1), pixel/(k-2);
+    designer.evaluate.pixel_aligned_steps) all tile the pixels: the three grids hold
+    the same pattern."""
+    pitch = pixel_pitch(spec)
+    if pitch is None:
+        return step_m
+    k = max(3, math.ceil(pitch / step_m - 1e-9))
+    return pitch / k
+
+
 def refined_evaluation(spec: Spec, ev, coarse: dict, fine_step_m: float | None, factor: float,
                        what: str, say) -> dict:
     """The evaluation JSON of ``spec`` at the finer step with its error estimate (FDFD:
@@ -1755,10 +1783,14 @@ def refined_evaluation(spec: Spec, ev, coarse: dict, fine_step_m: float | None, 
                                        progress=say))
         out["design_rules"] = coarse["design_rules"]
         out = vio.require_finite(out)
+        grids = out["coupling"]["error_estimate"].get("grid_steps_m") or []
         out["note"] = (f"step {fine_step_m:.4g} m = the finer of the start's and the design's "
-                       f"evaluation steps / {factor:g}; relative_error_estimate from solves at "
-                       "about 1.5x and 2.25x that step (three-grid Richardson with the "
-                       "observed order)")
+                       f"evaluation steps / {factor:g}"
+                       + (" (for a stored pixel pattern: its pixel / the next integer >= 3)"
+                          if pixel_pitch(spec) else "")
+                       + "; relative_error_estimate from solves at "
+                       + ", ".join(f"{h * 1e9:.3g}" for h in grids[1:])
+                       + " nm (three-grid Richardson with the observed order)")
     elif ev.solver == "fmm":
         say(f"re-evaluating the {what} design with the Fourier-order error estimate")
         out = vio.require_finite(evaluation_json(evaluate(spec, refine=True, progress=say)))
@@ -1814,7 +1846,7 @@ def write_outputs(result: DesignResult, out_dir: str | Path, *, status=None) -> 
     # both designs are re-evaluated at the same requested finer step, with the
     # three-grid error estimate
     steps = [e.run.grid_step_m for e in (ev, start_ev) if e.run.grid_step_m]
-    fine = min(steps) / p.config.refine_factor if steps else None
+    fine = refined_step(design_spec, min(steps) / p.config.refine_factor) if steps else None
     refined = refined_evaluation(design_spec, ev, design_eval, fine, p.config.refine_factor,
                                  "optimized", say)
     vio.write_json(out / "refined.json", refined)

@@ -221,15 +221,28 @@ def run_study(out: Path, quick: bool) -> dict:
         # estimate: the two solvers on one grid share that grid's error only in part
         fine = ff_comp["figures"]["beta_c_per_field_m_per_V"]["refined"]["optimized"]
         meep = xj["fdtd"]["beta_c_per_field_m_per_V"]
+        refined_json = json.loads((ff_dir / "refined.json").read_text())
+        i_fdfd = complex(*refined_json["coupling"]["integral_V"])
+        i_meep = complex(*xj["fdtd"]["integral_V"])
+        complex_difference = abs(i_meep - i_fdfd) / abs(i_fdfd)
         cross["meep_vs_refined_fdfd"] = {
+            "fdfd_grid_step_m": refined_json["provenance"].get("grid_step_m"),
             "meep_beta_c_per_field_m_per_V": meep,
             "fdfd_refined_beta_c_per_field_m_per_V": fine["value"],
             "fdfd_refined_relative_error": fine["relative_error"],
             "relative_difference": abs(meep - fine["value"]) / fine["value"],
             "within_fdfd_error": (fine["relative_error"] is not None and abs(
-                meep - fine["value"]) <= fine["relative_error"] * fine["value"])}
-        say(f"  FDFD vs Meep: relative difference {xc.relative_difference:.2%}; Meep vs "
-            f"refined FDFD |beta_c|: {cross['meep_vs_refined_fdfd']['relative_difference']:.2%}")
+                meep - fine["value"]) <= fine["relative_error"] * fine["value"]),
+            # the complex integral (phase included) against the refined FDFD one
+            "complex_relative_difference": complex_difference,
+            "fdfd_refined_complex_relative_error":
+                refined_json["coupling"]["relative_error_estimate"],
+            "agree": complex_difference <= xc.tolerance}
+        say(f"  FDFD vs Meep on the same grid: relative difference "
+            f"{xc.relative_difference:.2%}; Meep vs refined FDFD "
+            f"({cross['meep_vs_refined_fdfd']['fdfd_grid_step_m'] * 1e9:.3g} nm): "
+            f"{complex_difference:.2%} (complex), "
+            f"{cross['meep_vs_refined_fdfd']['relative_difference']:.2%} (|beta_c|)")
     except MeepNotInstalledError as exc:
         cross = {"skipped": f"Meep is not available ({str(exc).splitlines()[0]})"}
         say("  " + cross["skipped"])
@@ -286,10 +299,17 @@ def run_study(out: Path, quick: bool) -> dict:
             "rectangular optimum" if FREEFORM[quick]["start_density"] is None
             else f"uniform density {FREEFORM[quick]['start_density']}")),
         "targets": TARGETS,
-        "targets_met": {"structure_factor_ratio": kappa_ratio[0] >= TARGETS[
+        # the designs' own refined figures (three grids): met in value, and met with the
+        # ratio's error bar below it still at or above the target
+        "targets_met": {"structure_factor_ratio": kappa_refined[0] >= TARGETS[
                             "structure_factor_ratio"],
-                        "damage_factor_ratio": damage_ratio[0] >= TARGETS[
+                        "damage_factor_ratio": damage_refined[0] >= TARGETS[
                             "damage_factor_ratio"]},
+        "targets_met_beyond_error": {
+            "structure_factor_ratio": kappa_refined[0] - kappa_refined[1] >= TARGETS[
+                "structure_factor_ratio"],
+            "damage_factor_ratio": damage_refined[0] - damage_refined[1] >= TARGETS[
+                "damage_factor_ratio"]},
         "crosscheck": cross, "layouts": layouts,
         "study_s": time.monotonic() - t0,
     }
@@ -305,13 +325,24 @@ def closing(out: Path, s: dict) -> None:
     print(f"  (b) free-form rows:      kappa = {f['structure_factor']:.4g} "
           f"+/- {f['structure_factor_error']:.2g}, G/E_max = {f['damage_factor']:.4g} "
           f"+/- {f['damage_factor_error']:.2g}")
-    print(f"  free-form / rectangular: kappa x{s['structure_factor_ratio']:.3g} "
-          f"+/- {s['structure_factor_ratio_error']:.2g} (target x2), G/E_max "
-          f"x{s['damage_factor_ratio']:.3g} +/- {s['damage_factor_ratio_error']:.2g} "
-          "(target x1.3)")
+    print(f"  free-form / rectangular (design grid against half its step): kappa "
+          f"x{s['structure_factor_ratio']:.3g} +/- {s['structure_factor_ratio_error']:.2g}, "
+          f"G/E_max x{s['damage_factor_ratio']:.3g} +/- {s['damage_factor_ratio_error']:.2g}")
+    ref = s["refined"]
+    met = s["targets_met_beyond_error"]
+    print(f"  refined (three grids): kappa x{ref['structure_factor_ratio']:.3g} "
+          f"+/- {ref['structure_factor_ratio_error']:.2g} (target x2: "
+          f"{'met' if met['structure_factor_ratio'] else 'not met'} beyond the error), "
+          f"G/E_max x{ref['damage_factor_ratio']:.3g} +/- "
+          f"{ref['damage_factor_ratio_error']:.2g} (target x1.3: "
+          f"{'met' if met['damage_factor_ratio'] else 'not met'} beyond the error)")
     xc = s["crosscheck"]
-    print("  Meep cross-check: " + (xc["skipped"] if "skipped" in xc else
-                                    f"relative difference {xc['relative_difference']:.2%}"))
+    if "skipped" in xc:
+        print("  Meep cross-check: " + xc["skipped"])
+    else:
+        m = xc["meep_vs_refined_fdfd"]
+        print(f"  Meep cross-check: {xc['relative_difference']:.2%} from FDFD on the same "
+              f"grid, {m['complex_relative_difference']:.2%} from the refined FDFD result")
     print("  layouts: rectangular.gds, freeform.gds (+ .svg); picture: side_by_side.png")
     if s.get("plane", {}).get("assumption"):
         print("  " + s["plane"]["assumption"])
