@@ -1608,6 +1608,11 @@ def comparison(result: DesignResult, start_eval: dict, design_eval: dict,
                 "combined_error": r["gain"]["combined_error"],
                 "gain_exceeds_error": r["gain"]["gain_exceeds_error"]}
             figures[key]["gain_exceeds_error"] = r["gain"]["gain_exceeds_error"]
+            if r["gain"].get("note"):
+                # a start the refined grid does not resolve (a uniform grey density) has
+                # no ratio on the coarser design grid either
+                figures[key]["ratio"] = None
+                figures[key]["note"] = figures[key]["refined"]["note"] = r["gain"]["note"]
     data = {
         "objective": p.config.objective, "aggregate": p.config.aggregate,
         "scenarios": [m.scenario.label for m in p.models],
