@@ -76,7 +76,7 @@ import numpy as np
 from designer import io as vio
 from designer import objectives as obj
 from designer import optimize as opt
-from designer.errors import SpecError, UsageError
+from designer.errors import NumericalError, SpecError, UsageError
 from designer.families import get_family
 from designer.spec import Spec, dump_spec, load_spec
 from designer.tables import TableReader
@@ -685,9 +685,9 @@ def _density_chain(spec: Spec, config: DesignConfig, models) -> tuple:
     radius = delta = None
     if length > 0:
         delta = config.projection["delta_eta"]
-        radius = ff.filter_radius_for_length(config.projection.get("length_margin", 1.0)
-                                             * length, delta)
-        if not config.projection.get("robust", True):
+        radius = ff.filter_radius_for_length(config.projection["length_margin"] * length,
+                                             delta)
+        if not config.projection["robust"]:
             delta = None     # the nominal design only: the final snap enforces the rules
     g = layout.grid
     chain = obj.DensityChain(param.raw_shape, g.dx, g.dz, cells.periodic_x, radius, delta,
@@ -768,8 +768,6 @@ def _evaluate_with_grad(problem, u, multipliers, k, objective_only=False):
     (loss, extras), grad = fn(np.asarray(u, dtype=float), aux)
     loss, grad = float(loss), np.asarray(grad, dtype=float)
     if not (math.isfinite(loss) and np.all(np.isfinite(grad))):
-        from designer.errors import NumericalError
-
         what = "objective" if not math.isfinite(loss) else "gradient"
         raise NumericalError(
             f"{problem.spec.source}: [optimize] objective = "
@@ -1445,10 +1443,12 @@ def figure_errors(refined: dict, coarse: dict) -> dict:
     the three-grid estimate) with its error: ``value``, ``relative_error``,
     ``absolute_error`` and ``error_rule``.
 
-    |beta_c| and kappa = G/E0 carry the coupling's relative error (the length and E0 are
-    exact); E_max carries :data:`MAX_FIELD_ERROR_RULE` from ``coarse`` (the same design
-    at the design step); G/E_max their root-sum-square.  Exact layer-stack results
-    carry 0.  A figure without an estimate carries None."""
+    |beta_c| and kappa = G/E0 carry the relative error of |I| (the three-grid estimate
+    applied to the magnitude, ``magnitude_error_estimate``; the complex one where that
+    is missing; the length and E0 are exact); E_max carries
+    :data:`MAX_FIELD_ERROR_RULE` from ``coarse`` (the same design at the design step);
+    G/E_max their root-sum-square.  Exact layer-stack results carry 0.  A figure without
+    an estimate carries None."""
     c, cc = refined["coupling"], coarse["coupling"]
     solver = refined.get("provenance", {}).get("solver")
     h_f = refined.get("provenance", {}).get("grid_step_m")
@@ -1459,9 +1459,14 @@ def figure_errors(refined: dict, coarse: dict) -> dict:
         rel_i, rule_i = 0.0, "exact layer-stack solution"
         rel_e, rule_e = (0.0 if c.get(e_key) is not None else None), rule_i
     else:
-        rel_i = c.get("relative_error_estimate")
-        rule_i = "the coupling's error estimate: " + str(
-            (c.get("error_estimate") or {}).get("note") or "three grids (Richardson)")
+        if c.get("magnitude_error_estimate") is not None:
+            rel_i = c["magnitude_error_estimate"]
+            rule_i = ("the three-grid estimate of |I| (the figure depends on the magnitude "
+                      "only): " + str(c.get("magnitude_error_note") or "Richardson"))
+        else:
+            rel_i = c.get("relative_error_estimate")
+            rule_i = "the coupling's error estimate: " + str(
+                (c.get("error_estimate") or {}).get("note") or "three grids (Richardson)")
         if rel_i is None:
             key = "beta_c_per_field_m_per_V"
             rel_i = _two_grid_error(c.get(key), cc.get(key), ratio)
@@ -1603,6 +1608,11 @@ def comparison(result: DesignResult, start_eval: dict, design_eval: dict,
                 "combined_error": r["gain"]["combined_error"],
                 "gain_exceeds_error": r["gain"]["gain_exceeds_error"]}
             figures[key]["gain_exceeds_error"] = r["gain"]["gain_exceeds_error"]
+            if r["gain"].get("note"):
+                # a start the refined grid does not resolve (a uniform grey density) has
+                # no ratio on the coarser design grid either
+                figures[key]["ratio"] = None
+                figures[key]["note"] = figures[key]["refined"]["note"] = r["gain"]["note"]
     data = {
         "objective": p.config.objective, "aggregate": p.config.aggregate,
         "scenarios": [m.scenario.label for m in p.models],
@@ -1739,6 +1749,27 @@ def start_spec(spec: Spec, check: dict) -> Spec:
     return parse_spec(design_raw(spec, params), source=spec.source, base_dir=spec.base_dir)
 
 
+def pixel_pitch(spec: Spec) -> float | None:
+    """The x pitch of the spec's stored pixel density, or None."""
+    fr = getattr(spec.sample, "freeform", None)
+    if fr is None or getattr(fr, "density", None) is None or fr.pixel_m is None:
+        return None
+    return float(fr.pixel_m[0])
+
+
+def refined_step(spec: Spec, step_m: float) -> float:
+    """The refined evaluation's step: ``step_m``, or for a stored pixel pattern the
+    pixel divided by the smallest integer k >= 3 with ``pixel / k <= step_m``.  Then the
+    step and the error estimate's two coarser grids (pixel/(k-1), pixel/(k-2);
+    designer.evaluate.pixel_aligned_steps) all tile the pixels: the three grids hold
+    the same pattern."""
+    pitch = pixel_pitch(spec)
+    if pitch is None:
+        return step_m
+    k = max(3, math.ceil(pitch / step_m - 1e-9))
+    return pitch / k
+
+
 def refined_evaluation(spec: Spec, ev, coarse: dict, fine_step_m: float | None, factor: float,
                        what: str, say) -> dict:
     """The evaluation JSON of ``spec`` at the finer step with its error estimate (FDFD:
@@ -1757,10 +1788,15 @@ def refined_evaluation(spec: Spec, ev, coarse: dict, fine_step_m: float | None, 
                                        progress=say))
         out["design_rules"] = coarse["design_rules"]
         out = vio.require_finite(out)
+        grids = out["coupling"]["error_estimate"].get("grid_steps_m") or []
         out["note"] = (f"step {fine_step_m:.4g} m = the finer of the start's and the design's "
-                       f"evaluation steps / {factor:g}; relative_error_estimate from solves at "
-                       "about 1/1.5x and 1.5x that step (three-grid Richardson with the "
-                       "observed order)")
+                       f"evaluation steps / {factor:g}"
+                       + (" (for a stored pixel pattern: its pixel / the next integer >= 3)"
+                          if pixel_pitch(spec) else "")
+                       + "; relative_error_estimate from solves at "
+                       + ", ".join(f"{h * 1e9:.3g}" for h in grids if abs(h - out[
+                           "provenance"]["grid_step_m"]) > 1e-3 * h)
+                       + " nm (three-grid Richardson with the observed order)")
     elif ev.solver == "fmm":
         say(f"re-evaluating the {what} design with the Fourier-order error estimate")
         out = vio.require_finite(evaluation_json(evaluate(spec, refine=True, progress=say)))
@@ -1816,7 +1852,7 @@ def write_outputs(result: DesignResult, out_dir: str | Path, *, status=None) -> 
     # both designs are re-evaluated at the same requested finer step, with the
     # three-grid error estimate
     steps = [e.run.grid_step_m for e in (ev, start_ev) if e.run.grid_step_m]
-    fine = min(steps) / p.config.refine_factor if steps else None
+    fine = refined_step(design_spec, min(steps) / p.config.refine_factor) if steps else None
     refined = refined_evaluation(design_spec, ev, design_eval, fine, p.config.refine_factor,
                                  "optimized", say)
     vio.write_json(out / "refined.json", refined)

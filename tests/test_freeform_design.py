@@ -17,6 +17,7 @@ Spec values are scenarios of our own.
 
 import dataclasses
 import json
+import math
 
 import jax
 import numpy as np
@@ -378,3 +379,72 @@ def test_damage_factor_from_a_uniform_grey_start_fails_cleanly(tmp_path, capsys)
     err = capsys.readouterr().err
     assert code != 0
     assert "Traceback" not in err and "damage_factor" in err and str(p) in err
+
+
+# ---------------------------------------------------------------------------------
+# error estimate of a stored pixel pattern
+# ---------------------------------------------------------------------------------
+def test_error_grids_of_a_stored_pattern_tile_its_pixels(tmp_path):
+    # On a grid of step pixel/k the error grids are pixel/(k-1) and pixel/(k-2): each
+    # places the stored pattern pixel for pixel, i.e. it equals the stored array with
+    # every pixel repeated k times along x and z (closed form; geometric similarity of
+    # the three grids, P. J. Roache, Verification and Validation in Computational
+    # Science and Engineering, 1998, ch. 5)
+    from designer.design import refined_step
+    from designer.evaluate import pixel_aligned_steps
+
+    cols = np.zeros(50)
+    cols[5:15] = 1
+    cols[30:36] = 1
+    path, rho, dx = _pattern_spec(tmp_path, cols, rows_solid=[0])
+    spec = load_spec(path)
+    family = get_family("grating")
+    fr = spec.sample.freeform
+    for k in (1, 2, 3, 4):
+        lay = family.layout(spec.sample, spec.context, dx / k)
+        assert lay.grid.dx == pytest.approx(dx / k, rel=1e-9)
+        placed = region.start_density(fr, lay, lambda: None)
+        assert np.array_equal(placed, np.kron(rho, np.ones((k, k))))
+        steps = pixel_aligned_steps(spec, lay)
+        if k < 3:
+            assert steps is None          # no two coarser grids that tile the pixels
+        else:
+            assert steps == pytest.approx([dx / (k - 1), dx / (k - 2)], rel=1e-12)
+    # the refined step of a stored pattern: the pixel over the next integer >= 3
+    assert refined_step(spec, dx / 2) == pytest.approx(dx / 3, rel=1e-12)
+    assert refined_step(spec, dx / 3.5) == pytest.approx(dx / 4, rel=1e-12)
+    # a pattern whose pixels do not start on a cell edge gets the ordinary grids
+    shifted = load_spec(path)
+    moved = dataclasses.replace(fr, origin_m=(fr.origin_m[0], fr.origin_m[1] + 0.3 * dx))
+    shifted = dataclasses.replace(shifted, sample=dataclasses.replace(shifted.sample,
+                                                                      freeform=moved))
+    lay = family.layout(shifted.sample, shifted.context, dx / 3)
+    assert pixel_aligned_steps(shifted, lay) is None
+
+
+def test_magnitude_figures_carry_the_magnitude_estimate():
+    # kappa and |beta_c| depend on |I| only: they carry the three-grid estimate of |I|;
+    # a pure phase drift I(h) = I* exp(i a h) leaves |I| exact (closed form)
+    from designer.design import figure_errors
+    from designer.evaluate import three_grid_estimate
+
+    steps = [1e-9, 1.5e-9, 2.25e-9]
+    vals = [2.0 * np.exp(1j * 3e7 * h) for h in steps]
+    assert three_grid_estimate(vals, steps).relative_error > 0.01
+    assert three_grid_estimate([abs(v) for v in vals], steps).relative_error == 0.0
+    coupling = {"beta_c_per_field_m_per_V": 1e-5, "structure_factor": 0.5,
+                "max_field_in_material_V_per_m": 2.0, "damage_factor": 0.25,
+                "relative_error_estimate": 0.05, "magnitude_error_estimate": 0.01,
+                "magnitude_error_note": "observed order 2 (three grids)",
+                "error_estimate": {"note": "observed order 1.2 (three grids)"}}
+    refined = {"coupling": coupling, "provenance": {"solver": "fdfd", "grid_step_m": 1e-9}}
+    coarse = {"coupling": dict(coupling, max_field_in_material_V_per_m=2.1),
+              "provenance": {"solver": "fdfd", "grid_step_m": 2e-9}}
+    rows = figure_errors(refined, coarse)
+    assert rows["structure_factor"]["relative_error"] == 0.01
+    assert "|I|" in rows["structure_factor"]["error_rule"]
+    # E_max two grids, first order: |2.0 - 2.1| / (2 - 1) / 2.0
+    assert rows["max_field_in_material_V_per_m"]["relative_error"] == pytest.approx(0.05)
+    assert rows["damage_factor"]["relative_error"] == pytest.approx(math.hypot(0.01, 0.05))
+    del coupling["magnitude_error_estimate"]
+    assert figure_errors(refined, coarse)["structure_factor"]["relative_error"] == 0.05

@@ -373,3 +373,21 @@ def test_study_resume_keeps_the_folder_and_refuses_a_foreign_one(tmp_path):
     with pytest.raises(UsageError, match="no earlier run of this study"):
         _load("grating_5kV").run_study(out, quick=True, resume=True, say=lambda m: None)
     assert (out / "spec.toml").read_text() == "# someone else's\n"
+
+
+def test_onchip_freeform_spec_follows_its_settings():
+    """The free-form spec the study (and studies/benchmarks/design_quality.py) builds:
+    the region ends at the rectangular rows' channel edge, the full settings start grey,
+    the quick ones from the pillars, and an iteration budget can be overridden (common
+    practice, no source)."""
+    study = _load("onchip_accelerator")
+    pillars = STUDIES / "onchip_accelerator" / "pillars.toml"
+    full = study.freeform_raw(pillars, False)
+    quick = study.freeform_raw(pillars, True, 16)
+    assert full["sample"]["freeform"]["z_nm"] == [500.0 - 1000.0, 500.0]
+    assert full["sample"]["freeform"]["density"] == 0.5
+    assert full["optimize"]["optimizer"] == "mma"
+    assert full["optimize"]["length_margin"] == study.FREEFORM[False]["length_margin"]
+    assert "density" not in quick["sample"]["freeform"]
+    assert quick["optimize"]["iterations"] == 16
+    assert quick["sample"]["freeform"]["z_nm"] == [500.0 - 600.0, 500.0]

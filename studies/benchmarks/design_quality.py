@@ -138,7 +138,9 @@ def benchmark(quick: bool, work: Path) -> dict:
     start = {**_figures(json.loads((work / "parametric" / "start_refined.json").read_text())),
              "iterations": 0, "wall_s": 0.0, "optimizer": None}
 
-    ff_raw = _study_module().freeform_raw(rect_design, s["freeform_iterations"])
+    # the density problem from the parametric optimum (the study's quick settings: the
+    # rectangular start over a 600 nm region), both optimizers on it
+    ff_raw = _study_module().freeform_raw(rect_design, True, s["freeform_iterations"])
     # MMA restarts at every change of the projection sharpness: give each stage a few
     ff_raw = with_value(ff_raw, "optimize.projection_beta_every", s["projection_beta_every"])
     optimizers = {}

@@ -29,7 +29,9 @@ from designer.demo import cli, cli_json, spec_text, study_main, study_script  # 
 
 # quick: a coarse grid and short runs (for the test suite); full: the default grid
 QUICK = {"solver.grid_step_nm": 25.0, "optimize.iterations": 3}
-CROSSCHECK_STEP_NM = {True: 25.0, False: 12.5}
+# Meep's grid: the quick run's coarse grid; the full run uses the design's own grid (its
+# pixels then fall on whole cells, no resampling of the stored pattern)
+CROSSCHECK_STEP_NM = {True: 25.0, False: None}
 # Published reference for the size of the gain: adjoint-designed accelerator structures
 # against rectangular pillars (T. W. Hughes et al., Opt. Express 25, 15414, 2017).
 TARGETS = {"structure_factor_ratio": 2.0, "damage_factor_ratio": 1.3}
@@ -58,11 +60,12 @@ FREEFORM = {
 }
 
 
-def freeform_raw(rect_design: Path, quick: bool) -> dict:
+def freeform_raw(rect_design: Path, quick: bool, iterations: int | None = None) -> dict:
     """The free-form spec: each row's free-form region ``region_depth_nm`` deep from the
     channel edge (the channel of the rectangular optimum), started from
     ``start_density`` (None: the rectangular optimum), the density the only variable,
-    the robust eroded/nominal/dilated formulation; same channel, beam, laser and rules."""
+    the robust eroded/nominal/dilated formulation; same channel, beam, laser and rules.
+    ``iterations`` overrides the settings' budget."""
     import tomllib
 
     st = FREEFORM[quick]
@@ -72,7 +75,7 @@ def freeform_raw(rect_design: Path, quick: bool) -> dict:
                                  "z_nm": [h - max(st["region_depth_nm"], h), h]}
     if st["start_density"] is not None:
         raw["sample"]["freeform"]["density"] = st["start_density"]
-    n = st["iterations"]
+    n = st["iterations"] if iterations is None else iterations
     raw["optimize"] = {"objective": "structure_factor", "variables": ["density"],
                        "iterations": n, "optimizer": st["optimizer"],
                        "projection_beta": st["projection_beta"],
@@ -202,15 +205,44 @@ def run_study(out: Path, quick: bool) -> dict:
 
     say("step 4/5: cross-check of the free-form design with Meep (FDTD)")
     design = load_spec(ff_dir / "design.toml")
+    step_m = (CROSSCHECK_STEP_NM[quick] * 1e-9 if CROSSCHECK_STEP_NM[quick]
+              else design.solver.grid_step_m)
     try:
-        xc = crosscheck(design, grid_step_m=CROSSCHECK_STEP_NM[quick] * 1e-9,
-                        tolerance=0.05 if quick else 0.03, max_wall_s=600.0,
+        xc = crosscheck(design, grid_step_m=step_m,
+                        tolerance=0.05 if quick else 0.03, max_wall_s=900.0,
                         progress=lambda m: None)
-        vio.write_json(out / "crosscheck.json", crosscheck_json(xc, design))
+        xj = crosscheck_json(xc, design)
+        vio.write_json(out / "crosscheck.json", xj)
         vio.save_figure(crosscheck_figure(xc), out / "crosscheck.png")
         cross = {"relative_difference": xc.relative_difference, "agree": xc.agree,
-                 "grid_step_nm": CROSSCHECK_STEP_NM[quick]}
-        say(f"  FDFD vs Meep: relative difference {xc.relative_difference:.2%}")
+                 "magnitude_difference": xc.magnitude_difference,
+                 "grid_step_nm": step_m * 1e9}
+        # Meep (with its subpixel averaging) against FDFD's refined figure and its error
+        # estimate: the two solvers on one grid share that grid's error only in part
+        fine = ff_comp["figures"]["beta_c_per_field_m_per_V"]["refined"]["optimized"]
+        meep = xj["fdtd"]["beta_c_per_field_m_per_V"]
+        refined_json = json.loads((ff_dir / "refined.json").read_text())
+        i_fdfd = complex(*refined_json["coupling"]["integral_V"])
+        i_meep = complex(*xj["fdtd"]["integral_V"])
+        complex_difference = abs(i_meep - i_fdfd) / abs(i_fdfd)
+        cross["meep_vs_refined_fdfd"] = {
+            "fdfd_grid_step_m": refined_json["provenance"].get("grid_step_m"),
+            "meep_beta_c_per_field_m_per_V": meep,
+            "fdfd_refined_beta_c_per_field_m_per_V": fine["value"],
+            "fdfd_refined_relative_error": fine["relative_error"],
+            "relative_difference": abs(meep - fine["value"]) / fine["value"],
+            "within_fdfd_error": (fine["relative_error"] is not None and abs(
+                meep - fine["value"]) <= fine["relative_error"] * fine["value"]),
+            # the complex integral (phase included) against the refined FDFD one
+            "complex_relative_difference": complex_difference,
+            "fdfd_refined_complex_relative_error":
+                refined_json["coupling"]["relative_error_estimate"],
+            "agree": complex_difference <= xc.tolerance}
+        say(f"  FDFD vs Meep on the same grid: relative difference "
+            f"{xc.relative_difference:.2%}; Meep vs refined FDFD "
+            f"({cross['meep_vs_refined_fdfd']['fdfd_grid_step_m'] * 1e9:.3g} nm): "
+            f"{complex_difference:.2%} (complex), "
+            f"{cross['meep_vs_refined_fdfd']['relative_difference']:.2%} (|beta_c|)")
     except MeepNotInstalledError as exc:
         cross = {"skipped": f"Meep is not available ({str(exc).splitlines()[0]})"}
         say("  " + cross["skipped"])
@@ -267,10 +299,17 @@ def run_study(out: Path, quick: bool) -> dict:
             "rectangular optimum" if FREEFORM[quick]["start_density"] is None
             else f"uniform density {FREEFORM[quick]['start_density']}")),
         "targets": TARGETS,
-        "targets_met": {"structure_factor_ratio": kappa_ratio[0] >= TARGETS[
+        # the designs' own refined figures (three grids): met in value, and met with the
+        # ratio's error bar below it still at or above the target
+        "targets_met": {"structure_factor_ratio": kappa_refined[0] >= TARGETS[
                             "structure_factor_ratio"],
-                        "damage_factor_ratio": damage_ratio[0] >= TARGETS[
+                        "damage_factor_ratio": damage_refined[0] >= TARGETS[
                             "damage_factor_ratio"]},
+        "targets_met_beyond_error": {
+            "structure_factor_ratio": kappa_refined[0] - kappa_refined[1] >= TARGETS[
+                "structure_factor_ratio"],
+            "damage_factor_ratio": damage_refined[0] - damage_refined[1] >= TARGETS[
+                "damage_factor_ratio"]},
         "crosscheck": cross, "layouts": layouts,
         "study_s": time.monotonic() - t0,
     }
@@ -286,13 +325,24 @@ def closing(out: Path, s: dict) -> None:
     print(f"  (b) free-form rows:      kappa = {f['structure_factor']:.4g} "
           f"+/- {f['structure_factor_error']:.2g}, G/E_max = {f['damage_factor']:.4g} "
           f"+/- {f['damage_factor_error']:.2g}")
-    print(f"  free-form / rectangular: kappa x{s['structure_factor_ratio']:.3g} "
-          f"+/- {s['structure_factor_ratio_error']:.2g} (target x2), G/E_max "
-          f"x{s['damage_factor_ratio']:.3g} +/- {s['damage_factor_ratio_error']:.2g} "
-          "(target x1.3)")
+    print(f"  free-form / rectangular (design grid against half its step): kappa "
+          f"x{s['structure_factor_ratio']:.3g} +/- {s['structure_factor_ratio_error']:.2g}, "
+          f"G/E_max x{s['damage_factor_ratio']:.3g} +/- {s['damage_factor_ratio_error']:.2g}")
+    ref = s["refined"]
+    met = s["targets_met_beyond_error"]
+    print(f"  refined (three grids): kappa x{ref['structure_factor_ratio']:.3g} "
+          f"+/- {ref['structure_factor_ratio_error']:.2g} (target x2: "
+          f"{'met' if met['structure_factor_ratio'] else 'not met'} beyond the error), "
+          f"G/E_max x{ref['damage_factor_ratio']:.3g} +/- "
+          f"{ref['damage_factor_ratio_error']:.2g} (target x1.3: "
+          f"{'met' if met['damage_factor_ratio'] else 'not met'} beyond the error)")
     xc = s["crosscheck"]
-    print("  Meep cross-check: " + (xc["skipped"] if "skipped" in xc else
-                                    f"relative difference {xc['relative_difference']:.2%}"))
+    if "skipped" in xc:
+        print("  Meep cross-check: " + xc["skipped"])
+    else:
+        m = xc["meep_vs_refined_fdfd"]
+        print(f"  Meep cross-check: {xc['relative_difference']:.2%} from FDFD on the same "
+              f"grid, {m['complex_relative_difference']:.2%} from the refined FDFD result")
     print("  layouts: rectangular.gds, freeform.gds (+ .svg); picture: side_by_side.png")
     if s.get("plane", {}).get("assumption"):
         print("  " + s["plane"]["assumption"])
