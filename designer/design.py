@@ -1492,6 +1492,7 @@ def figure_errors(refined: dict, coarse: dict) -> dict:
 
 
 UNRESOLVED_START = 0.5   # a start known to no better than this has no meaningful ratio
+ROUNDING_RATIO = 1e9     # ... nor one this many times smaller than the optimized figure
 
 
 def gain_of(start: dict, optimized: dict) -> dict:
@@ -1508,6 +1509,12 @@ def gain_of(start: dict, optimized: dict) -> dict:
         # e.g. a uniform grey start, which couples ~1e-15 +/- 60 %: no ratio to speak of
         out["note"] = (f"the start's figure is not resolved (relative error {ra:.0%}); "
                        "no ratio against it")
+        return out
+    if abs(a) * ROUNDING_RATIO < abs(b):
+        # a laterally uniform start has no synchronous harmonic: its coupling is zero
+        # and what the solver returns is rounding, whatever its error estimate says
+        out["note"] = (f"the start's figure ({a:.3g}) is below {1 / ROUNDING_RATIO:g} of the "
+                       "optimized one, at the solver's rounding level; no ratio against it")
         return out
     out["ratio"] = r = b / a
     if ra is not None and rb is not None:

@@ -524,6 +524,10 @@ def test_no_ratio_against_an_unresolved_start():
     opt_row = {"value": 0.64, "relative_error": 0.13}
     g = gain_of(grey, opt_row)
     assert g["ratio"] is None and "not resolved" in g["note"]
+    # a start at rounding level (a uniform density has no synchronous harmonic: zero
+    # coupling; common practice, no source) gives none either, whatever its estimate
+    g = gain_of({"value": 4.05e-14, "relative_error": 0.33}, opt_row)
+    assert g["ratio"] is None and "rounding" in g["note"]
     g = gain_of({"value": 0.32, "relative_error": 0.03}, opt_row)
     assert g["ratio"] == pytest.approx(2.0)
     assert g["absolute_error"] == pytest.approx(2.0 * math.hypot(0.03, 0.13))
