@@ -118,6 +118,11 @@ def figures_with_error(spec_path: Path) -> dict:
     return out, ev, fine
 
 
+def _complex(v) -> complex:
+    """A complex number from its JSON form ``[re, im]`` or as it is."""
+    return complex(*v) if isinstance(v, (list, tuple)) else complex(v)
+
+
 def ratio_with_error(a: dict, b: dict, key: str) -> tuple[float, float]:
     """b/a and its error bar (relative errors added in quadrature)."""
     r = b[key] / a[key]
@@ -222,8 +227,8 @@ def run_study(out: Path, quick: bool) -> dict:
         fine = ff_comp["figures"]["beta_c_per_field_m_per_V"]["refined"]["optimized"]
         meep = xj["fdtd"]["beta_c_per_field_m_per_V"]
         refined_json = json.loads((ff_dir / "refined.json").read_text())
-        i_fdfd = complex(*refined_json["coupling"]["integral_V"])
-        i_meep = complex(*xj["fdtd"]["integral_V"])
+        i_fdfd = _complex(refined_json["coupling"]["integral_V"])
+        i_meep = _complex(xj["fdtd"]["integral_V"])
         complex_difference = abs(i_meep - i_fdfd) / abs(i_fdfd)
         cross["meep_vs_refined_fdfd"] = {
             "fdfd_grid_step_m": refined_json["provenance"].get("grid_step_m"),
