@@ -1756,25 +1756,19 @@ def start_spec(spec: Spec, check: dict) -> Spec:
     return parse_spec(design_raw(spec, params), source=spec.source, base_dir=spec.base_dir)
 
 
-def pixel_pitch(spec: Spec) -> float | None:
-    """The x pitch of the spec's stored pixel density, or None."""
-    fr = getattr(spec.sample, "freeform", None)
-    if fr is None or getattr(fr, "density", None) is None or fr.pixel_m is None:
-        return None
-    return float(fr.pixel_m[0])
-
-
 def refined_step(spec: Spec, step_m: float) -> float:
     """The refined evaluation's step: ``step_m``, or for a stored pixel pattern the
     pixel divided by the smallest integer k >= 3 with ``pixel / k <= step_m``.  Then the
     step and the error estimate's two coarser grids (pixel/(k-1), pixel/(k-2);
     designer.evaluate.pixel_aligned_steps) all tile the pixels: the three grids hold
     the same pattern."""
-    pitch = pixel_pitch(spec)
-    if pitch is None:
+    from designer.evaluate import stored_pixel_m
+
+    pixel = stored_pixel_m(spec)
+    if pixel is None:
         return step_m
-    k = max(3, math.ceil(pitch / step_m - 1e-9))
-    return pitch / k
+    k = max(3, math.ceil(pixel[0] / step_m - 1e-9))
+    return pixel[0] / k
 
 
 def refined_evaluation(spec: Spec, ev, coarse: dict, fine_step_m: float | None, factor: float,
@@ -1786,7 +1780,7 @@ def refined_evaluation(spec: Spec, ev, coarse: dict, fine_step_m: float | None, 
     Its ``design_rules`` are those of ``coarse`` (the design's own grid): a free-form
     pattern is made for that grid, and resampling it onto a finer one may tilt column
     edges that are straight on its own."""
-    from designer.evaluate import evaluate, evaluation_json
+    from designer.evaluate import evaluate, evaluation_json, stored_pixel_m
 
     if ev.solver == "fdfd":
         say(f"re-evaluating the {what} design at {fine_step_m * 1e9:.3g} nm with the error "
@@ -1799,7 +1793,7 @@ def refined_evaluation(spec: Spec, ev, coarse: dict, fine_step_m: float | None, 
         out["note"] = (f"step {fine_step_m:.4g} m = the finer of the start's and the design's "
                        f"evaluation steps / {factor:g}"
                        + (" (for a stored pixel pattern: its pixel / the next integer >= 3)"
-                          if pixel_pitch(spec) else "")
+                          if stored_pixel_m(spec) else "")
                        + "; relative_error_estimate from solves at "
                        + ", ".join(f"{h * 1e9:.3g}" for h in grids if abs(h - out[
                            "provenance"]["grid_step_m"]) > 1e-3 * h)

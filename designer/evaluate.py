@@ -255,6 +255,15 @@ def similar_step(spec: Spec, reference, target_m: float, window: float | None = 
     return min((b for b in best if b[0] <= low + 0.02), key=lambda b: b[1])[2]
 
 
+def stored_pixel_m(spec: Spec) -> tuple[float, float] | None:
+    """The (x, z) pitch of the spec's stored pixel density (``[sample.freeform]
+    density_file``), or None when it holds none."""
+    fr = getattr(spec.sample, "freeform", None)
+    if fr is None or getattr(fr, "density", None) is None or fr.pixel_m is None:
+        return None
+    return (float(fr.pixel_m[0]), float(fr.pixel_m[1]))
+
+
 def pixel_aligned_steps(spec: Spec, layout) -> list[float] | None:
     """The two coarser error-estimate steps for a spec that holds a stored pixel density
     (``[sample.freeform] density_file``) evaluated on a grid of step ``pitch / k``,
@@ -265,15 +274,15 @@ def pixel_aligned_steps(spec: Spec, layout) -> list[float] | None:
     grids at 1.5 h and 2.25 h would resample it into different structures whose
     differences say little about the discretization error.  None when the spec holds no
     stored pattern, k < 3, or the grid does not tile the pixels."""
-    fr = getattr(spec.sample, "freeform", None)
-    if fr is None or getattr(fr, "density", None) is None or fr.pixel_m is None:
+    pixel = stored_pixel_m(spec)
+    if pixel is None:
         return None
     g = layout.grid
-    px, pz = (float(v) for v in fr.pixel_m)
+    px, pz = pixel
     k = round(px / g.dx)
     if k < 3 or abs(k * g.dx - px) > 1e-6 * px or abs(k * g.dz - pz) > 1e-6 * pz:
         return None
-    frac = interface_fractions(g, np.asarray([fr.origin_m], dtype=float))
+    frac = interface_fractions(g, np.asarray([spec.sample.freeform.origin_m], dtype=float))
     frac = frac[~np.isnan(frac)]
     if np.any(np.minimum(frac, 1.0 - frac) > 1e-4):
         return None
